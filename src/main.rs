@@ -1,0 +1,234 @@
+//! The `weir` command. Thin: each subcommand unpacks its arguments, calls the library and
+//! prints the result.
+
+use anyhow::{Context, Result};
+use clap::{Parser, Subcommand};
+use std::io::{BufReader, BufWriter, IsTerminal, Write};
+use std::path::PathBuf;
+use weir::config::Config;
+use weir::train::{self, BadLines};
+
+#[derive(Parser)]
+#[command(
+    name = "weir",
+    version,
+    about = "Triage of insurance claims for fraud review. A flag is a referral for human review, never a finding of fraud."
+)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Subcommand)]
+enum Command {
+    /// Write the invented demo scenario: claims with ground-truth outcomes.
+    DemoData {
+        /// Folder to write claims.ndjson and truth.csv into.
+        #[arg(long)]
+        out: PathBuf,
+        /// About how many claims.
+        #[arg(long, default_value_t = 20_000)]
+        claims: usize,
+        #[arg(long, default_value_t = 1)]
+        seed: u64,
+    },
+    /// Train a model on adjudicated claims and report how good it is on held-out data.
+    Train {
+        /// Newline-delimited claims, each with an "outcome".
+        #[arg(long)]
+        data: PathBuf,
+        /// Where to write the model artifact.
+        #[arg(long)]
+        out: PathBuf,
+        /// Where to write the full evaluation report (JSON).
+        #[arg(long)]
+        report: Option<PathBuf>,
+        /// Configuration file (built-in defaults when absent).
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// What to do with a line that cannot be used.
+        #[arg(long, value_enum, default_value_t = BadLines::Refuse)]
+        bad_lines: BadLines,
+    },
+    /// Evaluate a score file (columns score,label) and print one JSON object.
+    Evaluate {
+        #[arg(long)]
+        scores: PathBuf,
+        /// Scores at or above this are referrals.
+        #[arg(long, default_value_t = 0.5)]
+        threshold: f64,
+        /// k for precision at k (default: the number of positives).
+        #[arg(long)]
+        top_k: Option<usize>,
+    },
+    /// Population stability index and KS statistic of one column between two CSV extracts.
+    Drift {
+        #[arg(long)]
+        baseline: PathBuf,
+        #[arg(long)]
+        current: PathBuf,
+        #[arg(long)]
+        column: String,
+        /// Quantile bins for numeric columns.
+        #[arg(long, default_value_t = weir::monitor::drift::DEFAULT_BINS)]
+        bins: usize,
+    },
+}
+
+fn main() {
+    if let Err(e) = run(Cli::parse()) {
+        eprintln!("error: {e:#}");
+        std::process::exit(1);
+    }
+}
+
+fn run(cli: Cli) -> Result<()> {
+    match cli.command {
+        Command::DemoData { out, claims, seed } => demo_data(&out, claims, seed),
+        Command::Train {
+            data,
+            out,
+            report,
+            config,
+            bad_lines,
+        } => {
+            let config = match config {
+                Some(p) => Config::read(&p)?,
+                None => Config::default(),
+            };
+            let file = std::fs::File::open(&data)
+                .with_context(|| format!("cannot open {}", data.display()))?;
+            let loaded = train::load(BufReader::new(file), bad_lines)?;
+            if !loaded.skipped.is_empty() {
+                eprintln!("skipped {} bad line(s):", loaded.skipped.len());
+                for p in loaded.skipped.iter().take(10) {
+                    eprintln!("  line {}: {}", p.line, p.problem);
+                }
+            }
+            let trained = train::train(loaded, &config, std::io::stderr().is_terminal())?;
+            std::fs::write(&out, trained.artifact.to_json())
+                .with_context(|| format!("cannot write {}", out.display()))?;
+            if let Some(r) = report {
+                let text = serde_json::to_string_pretty(&trained.report)?;
+                std::fs::write(&r, text)
+                    .with_context(|| format!("cannot write {}", r.display()))?;
+            }
+            print_summary(&trained.report, &out);
+            Ok(())
+        }
+        Command::Evaluate {
+            scores,
+            threshold,
+            top_k,
+        } => {
+            let e = weir::cli::evaluate_file(&scores, threshold, top_k)?;
+            println!("{}", serde_json::to_string_pretty(&e)?);
+            Ok(())
+        }
+        Command::Drift {
+            baseline,
+            current,
+            column,
+            bins,
+        } => {
+            let d = weir::cli::drift_files(&baseline, &current, &column, bins)?;
+            println!("{}", serde_json::to_string_pretty(&d)?);
+            Ok(())
+        }
+    }
+}
+
+fn demo_data(out: &std::path::Path, n: usize, seed: u64) -> Result<()> {
+    std::fs::create_dir_all(out).with_context(|| format!("cannot create {}", out.display()))?;
+    let claims = weir::demo_data::generate(n, seed);
+    let path = out.join("claims.ndjson");
+    let mut w = BufWriter::new(std::fs::File::create(&path)?);
+    for c in &claims {
+        writeln!(w, "{}", c.to_training_json())?;
+    }
+    w.flush()?;
+    let mut t = BufWriter::new(std::fs::File::create(out.join("truth.csv"))?);
+    writeln!(t, "claim_id,mechanism,outcome")?;
+    for c in &claims {
+        writeln!(
+            t,
+            "{},{},{}",
+            c.claim.claim_id,
+            c.mechanism.as_str(),
+            c.outcome.as_str()
+        )?;
+    }
+    t.flush()?;
+    let mut by = std::collections::BTreeMap::new();
+    for c in &claims {
+        *by.entry(c.mechanism.as_str()).or_insert(0usize) += 1;
+    }
+    println!(
+        "wrote {} claims of the invented Fernlow Mutual scenario to {} (seed {seed})",
+        claims.len(),
+        path.display()
+    );
+    for (m, k) in by {
+        println!("  {m:<13} {k:>7}");
+    }
+    Ok(())
+}
+
+fn pct(x: Option<f64>) -> String {
+    x.map_or("-".into(), |v| format!("{:.1}%", v * 100.0))
+}
+
+fn num(x: Option<f64>) -> String {
+    x.map_or("-".into(), |v| format!("{v:.3}"))
+}
+
+fn print_summary(r: &train::Report, out: &std::path::Path) {
+    let d = &r.data;
+    println!(
+        "trained on {} claims ({} referral-worthy), held out {} later claims ({} referral-worthy) from {}",
+        d.train_rows, d.train_positives, d.test_rows, d.test_positives, d.split_at
+    );
+    if d.skipped_count > 0 {
+        println!("skipped {} bad line(s)", d.skipped_count);
+    }
+    println!("rule: {}", r.rule.description);
+    println!(
+        "capacity over the held-out period: {} reviews\n",
+        r.rule.capacity_k
+    );
+    println!(
+        "{:<34} {:>7} {:>9} {:>7} {:>13} {:>10} {:>9} {:>9}",
+        "model", "CV AUC", "test AUC", "AP", "prec@capacity", "rec@cap", "referred", "precision"
+    );
+    for h in &r.held_out {
+        println!(
+            "{:<34} {:>7.3} {:>9} {:>7} {:>13} {:>10} {:>9} {:>9}",
+            h.model,
+            h.cv_mean_auc,
+            num(h.auc),
+            num(h.average_precision),
+            pct(h.precision_at_capacity),
+            pct(h.recall_at_capacity),
+            h.referred,
+            pct(h.precision)
+        );
+    }
+    println!(
+        "\nchampion: {} (model version {}), outlier score alone: test AUC {}",
+        r.champion,
+        r.model_version,
+        num(r.outliers.held_out_auc)
+    );
+    println!("\nhighest-scored held-out claims (referrals for review, not findings):");
+    for t in r.top_referrals.iter().take(5) {
+        println!(
+            "  {}  p={:.2} outlier={:.2} outcome={}  {}",
+            t.claim_id,
+            t.probability,
+            t.outlier_score,
+            t.outcome.as_str(),
+            t.reasons.join("; ")
+        );
+    }
+    println!("\nmodel written to {}", out.display());
+}

@@ -1,0 +1,629 @@
+//! The supervised model and its artifact: feature standardisation, classifier (logistic
+//! regression, or gradient-boosted trees where they win), calibration, the outlier model, drift
+//! baselines, and per-claim reasons.
+//!
+//! Two types: [`ModelArtifact`] is the versioned file (plain data, serde); [`Model`] is an
+//! artifact that has been checked against this build's feature catalogue and made ready to
+//! score. Loading never panics: every incompatibility is an [`ArtifactError`] that says what is
+//! wrong.
+
+use crate::features::{self, CATALOGUE, FeatureVector};
+use crate::monitor::drift::Baseline;
+use crate::outliers::OutlierModel;
+use forust_ml::gradientbooster::ContributionsMethod;
+use forust_ml::{GradientBooster, Matrix};
+use linfa::prelude::*;
+use linfa_logistic::LogisticRegression;
+use ndarray::{Array1, Array2, ArrayView1, ArrayView2, Axis};
+use serde::{Deserialize, Serialize};
+use sha2::{Digest, Sha256};
+use std::path::Path;
+
+pub const ARTIFACT_FORMAT: &str = "weir-model";
+pub const ARTIFACT_FORMAT_VERSION: u32 = 1;
+
+/// Per-feature centring and scaling (population standard deviation, as scikit-learn's
+/// `StandardScaler`); a constant feature gets scale 1 so it maps to 0.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Standardiser {
+    pub mean: Vec<f64>,
+    pub scale: Vec<f64>,
+}
+
+impl Standardiser {
+    pub fn fit(x: ArrayView2<f64>) -> Standardiser {
+        let n = x.nrows().max(1) as f64;
+        let mean = x
+            .mean_axis(Axis(0))
+            .map_or_else(|| vec![0.0; x.ncols()], |m| m.to_vec());
+        let scale = x
+            .axis_iter(Axis(1))
+            .zip(&mean)
+            .map(|(col, m)| {
+                let var = col.iter().map(|v| (v - m) * (v - m)).sum::<f64>() / n;
+                let sd = var.sqrt();
+                if sd > 1e-12 { sd } else { 1.0 }
+            })
+            .collect();
+        Standardiser { mean, scale }
+    }
+
+    pub fn apply(&self, x: ArrayView2<f64>) -> Array2<f64> {
+        let mut z = x.to_owned();
+        for mut row in z.outer_iter_mut() {
+            for ((v, m), s) in row.iter_mut().zip(&self.mean).zip(&self.scale) {
+                *v = (*v - m) / s;
+            }
+        }
+        z
+    }
+
+    pub fn apply_row(&self, x: &[f64], out: &mut [f64]) {
+        for (((o, v), m), s) in out.iter_mut().zip(x).zip(&self.mean).zip(&self.scale) {
+            *o = (v - m) / s;
+        }
+    }
+}
+
+pub fn sigmoid(t: f64) -> f64 {
+    if t >= 0.0 {
+        1.0 / (1.0 + (-t).exp())
+    } else {
+        let e = t.exp();
+        e / (1.0 + e)
+    }
+}
+
+#[derive(Debug, thiserror::Error)]
+pub enum FitError {
+    #[error("training data has no {0} rows: both classes are needed")]
+    OneClass(&'static str),
+    #[error("logistic regression failed: {0}")]
+    Logistic(String),
+    #[error("boosted trees failed: {0}")]
+    Trees(String),
+    #[error(transparent)]
+    Outliers(#[from] crate::outliers::OutlierError),
+}
+
+/// Fitted logistic regression on standardised features.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Logistic {
+    pub coef: Vec<f64>,
+    pub intercept: f64,
+    /// L2 penalty as linfa defines it: loss = sum of log-losses + alpha/2 |w|^2
+    /// (scikit-learn's C = 1/alpha).
+    pub alpha: f64,
+}
+
+impl Logistic {
+    /// Fit with labels `y` (true = positive). linfa labels the more frequent class its
+    /// "positive" class, so the sign is fixed here from `labels().pos`, never assumed.
+    pub fn fit(z: ArrayView2<f64>, y: &[bool], alpha: f64) -> Result<Logistic, FitError> {
+        if !y.iter().any(|&v| v) {
+            return Err(FitError::OneClass("positive"));
+        }
+        if y.iter().all(|&v| v) {
+            return Err(FitError::OneClass("negative"));
+        }
+        let targets: Array1<bool> = y.iter().copied().collect();
+        let data = DatasetBase::new(z.to_owned(), targets);
+        let fitted = LogisticRegression::default()
+            .alpha(alpha)
+            .gradient_tolerance(1e-4)
+            .max_iterations(1000)
+            .fit(&data)
+            .map_err(|e| FitError::Logistic(e.to_string()))?;
+        let sign = if fitted.labels().pos.class { 1.0 } else { -1.0 };
+        Ok(Logistic {
+            coef: fitted.params().iter().map(|w| sign * w).collect(),
+            intercept: sign * fitted.intercept(),
+            alpha,
+        })
+    }
+
+    pub fn margin(&self, z: &[f64]) -> f64 {
+        self.intercept + self.coef.iter().zip(z).map(|(w, v)| w * v).sum::<f64>()
+    }
+}
+
+/// Settings of the boosted-trees challenger.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct TreeSettings {
+    pub iterations: usize,
+    pub learning_rate: f32,
+    pub max_depth: usize,
+    pub seed: u64,
+}
+
+impl Default for TreeSettings {
+    fn default() -> Self {
+        TreeSettings {
+            iterations: 150,
+            learning_rate: 0.1,
+            max_depth: 4,
+            seed: 0,
+        }
+    }
+}
+
+/// Gradient-boosted trees (forust-ml, log-loss) on raw features.
+pub struct Trees {
+    booster: Box<GradientBooster>,
+}
+
+impl std::fmt::Debug for Trees {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str("Trees { .. }")
+    }
+}
+
+fn column_major(x: ArrayView2<f64>) -> Vec<f64> {
+    x.t().iter().copied().collect()
+}
+
+impl Trees {
+    /// Fit with per-row weights (class balancing happens through them).
+    pub fn fit(
+        x: ArrayView2<f64>,
+        y: &[bool],
+        weights: &[f64],
+        s: &TreeSettings,
+    ) -> Result<Trees, FitError> {
+        let data = column_major(x);
+        let m = Matrix::new(&data, x.nrows(), x.ncols());
+        let yv: Vec<f64> = y.iter().map(|&v| f64::from(u8::from(v))).collect();
+        let mut booster = GradientBooster::default()
+            .set_iterations(s.iterations)
+            .set_learning_rate(s.learning_rate)
+            .set_max_depth(s.max_depth)
+            .set_seed(s.seed)
+            .set_parallel(true);
+        booster
+            .fit(&m, &yv, weights, None)
+            .map_err(|e| FitError::Trees(e.to_string()))?;
+        Ok(Trees {
+            booster: Box::new(booster),
+        })
+    }
+
+    pub fn margins(&self, x: ArrayView2<f64>) -> Vec<f64> {
+        let data = column_major(x);
+        self.booster
+            .predict(&Matrix::new(&data, x.nrows(), x.ncols()), false)
+    }
+
+    /// Per-feature contributions to the log-odds of one row (averaged node values).
+    pub fn contributions(&self, row: &[f64]) -> Vec<f64> {
+        let mut c = self.booster.predict_contributions(
+            &Matrix::new(row, 1, row.len()),
+            ContributionsMethod::Average,
+            false,
+        );
+        c.truncate(row.len()); // last entry is the bias
+        c
+    }
+
+    pub fn to_value(&self) -> serde_json::Value {
+        serde_json::to_value(&*self.booster).unwrap_or(serde_json::Value::Null)
+    }
+
+    pub fn from_value(v: &serde_json::Value) -> Result<Trees, String> {
+        GradientBooster::deserialize(v)
+            .map(|booster| Trees {
+                booster: Box::new(booster),
+            })
+            .map_err(|e| e.to_string())
+    }
+}
+
+/// Platt scaling: p = sigmoid(a * margin + b), fitted by maximum likelihood (Newton's method)
+/// on out-of-fold margins. It undoes the shift that class rebalancing puts into the margins.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct Platt {
+    pub a: f64,
+    pub b: f64,
+}
+
+impl Platt {
+    pub fn fit(margins: &[f64], y: &[bool]) -> Platt {
+        let nll = |a: f64, b: f64| -> f64 {
+            margins
+                .iter()
+                .zip(y)
+                .map(|(&s, &t)| {
+                    let z = a * s + b;
+                    // log(1 + e^z) - t z, computed stably
+                    let sp = if z > 0.0 {
+                        z + (-z).exp().ln_1p()
+                    } else {
+                        z.exp().ln_1p()
+                    };
+                    sp - if t { z } else { 0.0 }
+                })
+                .sum()
+        };
+        let (mut a, mut b) = (1.0, 0.0);
+        let mut f = nll(a, b);
+        for _ in 0..100 {
+            let (mut ga, mut gb, mut haa, mut hab, mut hbb) = (0.0, 0.0, 1e-9, 0.0, 1e-9);
+            for (&s, &t) in margins.iter().zip(y) {
+                let p = sigmoid(a * s + b);
+                let r = p - f64::from(u8::from(t));
+                let w = p * (1.0 - p);
+                ga += r * s;
+                gb += r;
+                haa += w * s * s;
+                hab += w * s;
+                hbb += w;
+            }
+            let det = haa * hbb - hab * hab;
+            if det.abs() < 1e-300 {
+                break;
+            }
+            let da = (hbb * ga - hab * gb) / det;
+            let db = (haa * gb - hab * ga) / det;
+            // Halve the step until the likelihood does not get worse.
+            let mut step = 1.0;
+            let mut accepted = false;
+            while step > 1e-10 {
+                let (na, nb) = (a - step * da, b - step * db);
+                let nf = nll(na, nb);
+                if nf <= f {
+                    a = na;
+                    b = nb;
+                    accepted = (f - nf) > 1e-13 * f.abs().max(1.0);
+                    f = nf;
+                    break;
+                }
+                step /= 2.0;
+            }
+            if !accepted {
+                break;
+            }
+        }
+        Platt { a, b }
+    }
+
+    pub fn apply(&self, margin: f64) -> f64 {
+        sigmoid(self.a * margin + self.b)
+    }
+}
+
+/// Which classifier the artifact carries, with its parameters.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum ClassifierSpec {
+    LogisticRegression(Logistic),
+    BoostedTrees {
+        settings: TreeSettings,
+        booster: serde_json::Value,
+    },
+}
+
+/// Drift baselines recorded at training time.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Baselines {
+    /// One per model feature, in the artifact's feature order.
+    pub features: Vec<Baseline>,
+    pub probability: Baseline,
+    pub outlier_score: Baseline,
+}
+
+/// Where the model came from and how good it was found.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct TrainingInfo {
+    pub created_at: String,
+    pub data_from: String,
+    pub data_to: String,
+    pub train_rows: usize,
+    pub train_positives: usize,
+    pub test_rows: usize,
+    pub test_positives: usize,
+    /// Held-out and cross-validation figures, as in the training report.
+    pub metrics: serde_json::Value,
+}
+
+/// The versioned model file.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ModelArtifact {
+    pub format: String,
+    pub format_version: u32,
+    /// First 16 hex digits of the SHA-256 of the artifact with this field empty.
+    pub version: String,
+    pub features: Vec<String>,
+    pub standardiser: Standardiser,
+    pub classifier: ClassifierSpec,
+    pub calibration: Platt,
+    /// Probability at or above which the training rule refers a claim (see the report).
+    pub threshold: f64,
+    pub outliers: OutlierModel,
+    pub baselines: Baselines,
+    pub training: TrainingInfo,
+}
+
+#[derive(Debug, thiserror::Error)]
+pub enum ArtifactError {
+    #[error("cannot read model file {path}: {source}")]
+    Io {
+        path: String,
+        source: std::io::Error,
+    },
+    #[error("model file is not a weir model artifact: {0}")]
+    Parse(String),
+    #[error(
+        "model file format {found:?} version {version} is not supported (this build reads {ARTIFACT_FORMAT:?} version {ARTIFACT_FORMAT_VERSION})"
+    )]
+    Format { found: String, version: u32 },
+    #[error(
+        "model file content does not match its version hash (recorded {recorded}, computed {computed}): the file was changed or damaged"
+    )]
+    Hash { recorded: String, computed: String },
+    #[error("model uses features this build cannot produce: {0:?}")]
+    UnknownFeatures(Vec<String>),
+    #[error("model file is inconsistent: {0}")]
+    Shape(String),
+}
+
+impl ModelArtifact {
+    fn content_hash(&self) -> String {
+        let mut copy = self.clone();
+        copy.version = String::new();
+        let bytes = serde_json::to_vec(&copy).unwrap_or_default();
+        let digest = Sha256::digest(&bytes);
+        digest.iter().take(8).map(|b| format!("{b:02x}")).collect()
+    }
+
+    /// Set `version` to the content hash.
+    pub fn seal(&mut self) {
+        self.version = self.content_hash();
+    }
+
+    pub fn to_json(&self) -> String {
+        serde_json::to_string_pretty(self).unwrap_or_default()
+    }
+
+    pub fn from_json(text: &str) -> Result<ModelArtifact, ArtifactError> {
+        // Check the format header first so an old or foreign file gets the clearer message.
+        let v: serde_json::Value =
+            serde_json::from_str(text).map_err(|e| ArtifactError::Parse(e.to_string()))?;
+        let found = v.get("format").and_then(|f| f.as_str()).unwrap_or("");
+        let version = v
+            .get("format_version")
+            .and_then(|f| f.as_u64())
+            .unwrap_or(0);
+        if found != ARTIFACT_FORMAT || version != u64::from(ARTIFACT_FORMAT_VERSION) {
+            return Err(ArtifactError::Format {
+                found: found.to_string(),
+                version: u32::try_from(version).unwrap_or(u32::MAX),
+            });
+        }
+        let a: ModelArtifact =
+            serde_json::from_value(v).map_err(|e| ArtifactError::Parse(e.to_string()))?;
+        let computed = a.content_hash();
+        if computed != a.version {
+            return Err(ArtifactError::Hash {
+                recorded: a.version.clone(),
+                computed,
+            });
+        }
+        Ok(a)
+    }
+
+    pub fn read(path: &Path) -> Result<ModelArtifact, ArtifactError> {
+        let text = std::fs::read_to_string(path).map_err(|source| ArtifactError::Io {
+            path: path.display().to_string(),
+            source,
+        })?;
+        ModelArtifact::from_json(&text)
+    }
+}
+
+/// A short, plain reason for a score.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Reason {
+    pub code: String,
+    pub text: String,
+    /// Contribution to the log-odds (model reasons) or rule points.
+    pub weight: f64,
+}
+
+/// The result of scoring one claim.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Scored {
+    /// Calibrated probability that a referral is worth it.
+    pub probability: f64,
+    pub outlier_score: f64,
+    pub cluster: usize,
+    /// Top features pushing the score up, strongest first.
+    pub reasons: Vec<Reason>,
+    /// The model's features, in artifact order (kept in the audit record).
+    pub features: Vec<f64>,
+}
+
+enum Classifier {
+    Logistic(Logistic),
+    Trees(Trees),
+}
+
+/// A checked artifact, ready to score.
+pub struct Model {
+    pub artifact: ModelArtifact,
+    index: Vec<usize>,
+    classifier: Classifier,
+}
+
+impl std::fmt::Debug for Model {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "Model({})", self.artifact.version)
+    }
+}
+
+/// How many reasons a score carries.
+pub const MAX_REASONS: usize = 3;
+
+impl Model {
+    pub fn new(artifact: ModelArtifact) -> Result<Model, ArtifactError> {
+        let index =
+            features::resolve(&artifact.features).map_err(ArtifactError::UnknownFeatures)?;
+        let d = index.len();
+        let shape = |what: &str, got: usize| {
+            Err(ArtifactError::Shape(format!(
+                "{what} has {got} entries for {d} features"
+            )))
+        };
+        if artifact.standardiser.mean.len() != d {
+            return shape("standardiser.mean", artifact.standardiser.mean.len());
+        }
+        if artifact.standardiser.scale.len() != d {
+            return shape("standardiser.scale", artifact.standardiser.scale.len());
+        }
+        if artifact
+            .standardiser
+            .scale
+            .iter()
+            .any(|s| !(s.is_finite() && *s > 0.0))
+        {
+            return Err(ArtifactError::Shape(
+                "standardiser.scale must be finite and positive".into(),
+            ));
+        }
+        if artifact.outliers.centres.is_empty()
+            || artifact.outliers.centres.iter().any(|c| c.len() != d)
+            || artifact.outliers.spreads.len() != artifact.outliers.centres.len()
+        {
+            return Err(ArtifactError::Shape(format!(
+                "outliers: need at least one centre of {d} values and one spread per centre"
+            )));
+        }
+        if artifact.baselines.features.len() != d {
+            return shape("baselines.features", artifact.baselines.features.len());
+        }
+        let classifier = match &artifact.classifier {
+            ClassifierSpec::LogisticRegression(l) => {
+                if l.coef.len() != d {
+                    return shape("classifier.coef", l.coef.len());
+                }
+                Classifier::Logistic(l.clone())
+            }
+            ClassifierSpec::BoostedTrees { booster, .. } => Classifier::Trees(
+                Trees::from_value(booster)
+                    .map_err(|e| ArtifactError::Shape(format!("classifier.booster: {e}")))?,
+            ),
+        };
+        Ok(Model {
+            artifact,
+            index,
+            classifier,
+        })
+    }
+
+    pub fn version(&self) -> &str {
+        &self.artifact.version
+    }
+
+    /// The model's features selected from a full feature vector.
+    pub fn select(&self, full: &FeatureVector) -> Vec<f64> {
+        self.index.iter().map(|&i| full[i]).collect()
+    }
+
+    /// Uncalibrated margins (log-odds) for rows of model features.
+    pub fn margins(&self, x: ArrayView2<f64>) -> Vec<f64> {
+        match &self.classifier {
+            Classifier::Logistic(l) => {
+                let z = self.artifact.standardiser.apply(x);
+                z.outer_iter()
+                    .map(|r| l.margin(r.as_slice().unwrap_or(&r.to_vec())))
+                    .collect()
+            }
+            Classifier::Trees(t) => t.margins(x),
+        }
+    }
+
+    pub fn calibrated(&self, margin: f64) -> f64 {
+        self.artifact.calibration.apply(margin)
+    }
+
+    pub fn score(&self, full: &FeatureVector) -> Scored {
+        let x = self.select(full);
+        let mut z = vec![0.0; x.len()];
+        self.artifact.standardiser.apply_row(&x, &mut z);
+        let (margin, contrib) = match &self.classifier {
+            Classifier::Logistic(l) => {
+                let c: Vec<f64> = l.coef.iter().zip(&z).map(|(w, v)| w * v).collect();
+                (l.margin(&z), c)
+            }
+            Classifier::Trees(t) => {
+                let m = t.margins(ArrayView2::from_shape((1, x.len()), &x).expect("1 row"));
+                (m[0], t.contributions(&x))
+            }
+        };
+        let (cluster, outlier_score) = self.artifact.outliers.score(ArrayView1::from(&z));
+        Scored {
+            probability: self.calibrated(margin),
+            outlier_score,
+            cluster,
+            reasons: self.reasons(&x, &contrib),
+            features: x,
+        }
+    }
+
+    fn reasons(&self, x: &[f64], contrib: &[f64]) -> Vec<Reason> {
+        let mut order: Vec<usize> = (0..contrib.len()).filter(|&i| contrib[i] > 0.05).collect();
+        order.sort_by(|&a, &b| contrib[b].total_cmp(&contrib[a]));
+        order
+            .into_iter()
+            .take(MAX_REASONS)
+            .map(|i| {
+                let def = &CATALOGUE[self.index[i]];
+                Reason {
+                    code: format!("feature.{}", def.name),
+                    text: (def.reason)(x[i]),
+                    weight: contrib[i],
+                }
+            })
+            .collect()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn platt_recovers_known_parameters() {
+        // Labels drawn deterministically from p = sigmoid(2 s - 1): Platt must find a≈2, b≈-1.
+        let mut margins = Vec::new();
+        let mut y = Vec::new();
+        for i in 0..4000 {
+            let s = (f64::from(i) / 4000.0) * 6.0 - 3.0;
+            let p = sigmoid(2.0 * s - 1.0);
+            // A low-discrepancy sequence instead of random draws keeps the test exact.
+            let u = (f64::from(i) * 0.618_033_988_749_895) % 1.0;
+            margins.push(s);
+            y.push(u < p);
+        }
+        let pl = Platt::fit(&margins, &y);
+        assert!((pl.a - 2.0).abs() < 0.15, "{pl:?}");
+        assert!((pl.b + 1.0).abs() < 0.15, "{pl:?}");
+    }
+
+    #[test]
+    fn standardiser_uses_population_sd_and_guards_constants() {
+        let x = ndarray::array![[1.0, 5.0], [3.0, 5.0]];
+        let s = Standardiser::fit(x.view());
+        assert_eq!(s.mean, vec![2.0, 5.0]);
+        assert_eq!(s.scale, vec![1.0, 1.0]);
+        let z = s.apply(x.view());
+        assert_eq!(z, ndarray::array![[-1.0, 0.0], [1.0, 0.0]]);
+    }
+
+    #[test]
+    fn artifact_errors_name_the_problem() {
+        let err = ModelArtifact::from_json("{\"format\": \"other\"}").unwrap_err();
+        assert!(matches!(err, ArtifactError::Format { .. }), "{err}");
+        let err = ModelArtifact::from_json("not json").unwrap_err();
+        assert!(matches!(err, ArtifactError::Parse(_)), "{err}");
+    }
+}

@@ -105,12 +105,116 @@ impl Default for Training {
     }
 }
 
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum LogFormat {
+    Text,
+    Json,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct Server {
+    /// Address to listen on; port 0 picks a free port (printed at start-up).
+    pub listen: String,
+    /// Largest request body for single requests.
+    pub body_limit_bytes: usize,
+    /// Largest body for the batch intake.
+    pub batch_limit_bytes: usize,
+    /// Longest line accepted in a batch.
+    pub batch_line_bytes: usize,
+    pub request_timeout_seconds: u64,
+    /// Requests served at once; beyond it the service answers 503 with Retry-After.
+    pub concurrency_limit: usize,
+    pub log_format: LogFormat,
+}
+
+impl Default for Server {
+    fn default() -> Self {
+        Server {
+            listen: "127.0.0.1:8080".into(),
+            body_limit_bytes: 256 * 1024,
+            batch_limit_bytes: 512 * 1024 * 1024,
+            batch_line_bytes: 64 * 1024,
+            request_timeout_seconds: 30,
+            concurrency_limit: 512,
+            log_format: LogFormat::Text,
+        }
+    }
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct StoreConfig {
+    /// Folder of the embedded sled store.
+    pub path: std::path::PathBuf,
+    /// sled page cache, in MiB.
+    pub cache_mb: u64,
+}
+
+impl Default for StoreConfig {
+    fn default() -> Self {
+        StoreConfig {
+            path: "data/weir.sled".into(),
+            cache_mb: 128,
+        }
+    }
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct Paths {
+    /// The champion model artifact.
+    pub model: std::path::PathBuf,
+    /// The rule file.
+    pub rules: std::path::PathBuf,
+}
+
+impl Default for Paths {
+    fn default() -> Self {
+        Paths {
+            model: "model.json".into(),
+            rules: "config/rules.toml".into(),
+        }
+    }
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct Queues {
+    /// How long an investigator holds a leased item before it returns to the queue.
+    pub lease_minutes: u64,
+    /// Daily capacity of each worked queue (items a day).
+    pub investigate_capacity: f64,
+    pub desk_check_capacity: f64,
+    pub audit_capacity: f64,
+}
+
+impl Default for Queues {
+    fn default() -> Self {
+        Queues {
+            lease_minutes: 60,
+            investigate_capacity: 1.5,
+            desk_check_capacity: 6.0,
+            audit_capacity: 1.0,
+        }
+    }
+}
+
 #[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
 #[serde(default, deny_unknown_fields)]
 pub struct Config {
     pub referral: Referral,
     pub training: Training,
+    pub server: Server,
+    pub store: StoreConfig,
+    pub paths: Paths,
+    pub routing: crate::rules::Routing,
+    pub queues: Queues,
 }
+
+/// Keys that are valid but absent from the serialised defaults (their default is "none").
+const OPTIONAL_KEYS: &[&str] = &["routing.desk_check_probability"];
 
 #[derive(Debug, thiserror::Error)]
 #[error("configuration {source_name} has {} problem(s):\n  - {}", .problems.len(), .problems.join("\n  - "))]
@@ -121,14 +225,26 @@ pub struct ConfigError {
 
 impl Config {
     pub fn from_toml(text: &str, source_name: &str) -> Result<Config, ConfigError> {
+        Config::from_toml_with_env(text, source_name, std::iter::empty())
+    }
+
+    /// As [`Config::from_toml`], then environment overrides: `WEIR_SECTION_KEY=value` sets
+    /// `[section] key` (e.g. `WEIR_SERVER_LISTEN=0.0.0.0:8080`, `WEIR_STORE_PATH=/var/lib/weir`).
+    /// The value is read as TOML when it parses as a TOML value, else as a string.
+    pub fn from_toml_with_env(
+        text: &str,
+        source_name: &str,
+        env: impl Iterator<Item = (String, String)>,
+    ) -> Result<Config, ConfigError> {
         let fail = |problems| ConfigError {
             source_name: source_name.to_string(),
             problems,
         };
-        let value: toml::Value =
+        let mut value: toml::Value =
             toml::from_str(text).map_err(|e: toml::de::Error| fail(vec![e.to_string()]))?;
-        // Unknown keys first, all of them, by comparing with the defaults' own keys.
         let mut problems: Vec<String> = Vec::new();
+        apply_env(&mut value, env, &mut problems);
+        // Unknown keys first, all of them, by comparing with the defaults' own keys.
         check_keys(&value, &Config::default(), "", &mut problems);
         if !problems.is_empty() {
             return Err(fail(problems));
@@ -146,6 +262,21 @@ impl Config {
             problems: vec![format!("cannot read: {e}")],
         })?;
         Config::from_toml(&text, &path.display().to_string())
+    }
+
+    /// Read a file (or start from the defaults) and apply `WEIR_*` environment overrides.
+    pub fn load(path: Option<&Path>) -> Result<Config, ConfigError> {
+        let (text, name) = match path {
+            Some(p) => (
+                std::fs::read_to_string(p).map_err(|e| ConfigError {
+                    source_name: p.display().to_string(),
+                    problems: vec![format!("cannot read: {e}")],
+                })?,
+                p.display().to_string(),
+            ),
+            None => (String::new(), "built-in defaults".to_string()),
+        };
+        Config::from_toml_with_env(&text, &name, std::env::vars())
     }
 
     /// Every semantic problem, at once.
@@ -195,6 +326,45 @@ impl Config {
                 ));
             }
         }
+        let ro = &self.routing;
+        for (name, v) in [
+            (
+                "routing.investigate_probability",
+                ro.investigate_probability,
+            ),
+            ("routing.outlier_desk_check", ro.outlier_desk_check),
+            ("routing.audit_share", ro.audit_share),
+        ] {
+            if !(0.0..=1.0).contains(&v) {
+                p.push(format!("{name}: must be between 0 and 1"));
+            }
+        }
+        if let Some(d) = ro.desk_check_probability
+            && !(0.0..=1.0).contains(&d)
+        {
+            p.push("routing.desk_check_probability: must be between 0 and 1".into());
+        }
+        if !(ro.review_cost.is_finite() && ro.review_cost >= 0.0) {
+            p.push("routing.review_cost: must be a finite number >= 0".into());
+        }
+        let sv = &self.server;
+        if sv.listen.parse::<std::net::SocketAddr>().is_err() {
+            p.push(format!(
+                "server.listen: {:?} is not an address such as 127.0.0.1:8080",
+                sv.listen
+            ));
+        }
+        if sv.body_limit_bytes < 1024 || sv.batch_line_bytes < 1024 {
+            p.push("server.body_limit_bytes and server.batch_line_bytes: at least 1024".into());
+        }
+        if sv.concurrency_limit == 0 || sv.request_timeout_seconds == 0 {
+            p.push(
+                "server.concurrency_limit and server.request_timeout_seconds: at least 1".into(),
+            );
+        }
+        if self.queues.lease_minutes == 0 {
+            p.push("queues.lease_minutes: at least 1".into());
+        }
         if p.is_empty() { Ok(()) } else { Err(p) }
     }
 
@@ -207,6 +377,44 @@ impl Config {
                 .collect()
         } else {
             self.training.features.clone()
+        }
+    }
+}
+
+fn apply_env(
+    value: &mut toml::Value,
+    env: impl Iterator<Item = (String, String)>,
+    problems: &mut Vec<String>,
+) {
+    let Ok(toml::Value::Table(schema)) = toml::Value::try_from(Config::default()) else {
+        return;
+    };
+    for (name, raw) in env {
+        let Some(rest) = name.strip_prefix("WEIR_") else {
+            continue;
+        };
+        let rest = rest.to_ascii_lowercase();
+        let target = schema.iter().find_map(|(section, sub)| {
+            let key = rest.strip_prefix(&format!("{section}_"))?;
+            let known = sub.as_table().is_some_and(|t| t.contains_key(key))
+                || OPTIONAL_KEYS.contains(&format!("{section}.{key}").as_str());
+            known.then(|| (section.clone(), key.to_string()))
+        });
+        let Some((section, key)) = target else {
+            problems.push(format!("environment {name}: names no configuration key"));
+            continue;
+        };
+        let parsed = toml::from_str::<toml::Table>(&format!("v = {raw}"))
+            .ok()
+            .and_then(|mut t| t.remove("v"))
+            .unwrap_or(toml::Value::String(raw));
+        if let toml::Value::Table(root) = value {
+            let entry = root
+                .entry(section)
+                .or_insert_with(|| toml::Value::Table(toml::Table::new()));
+            if let toml::Value::Table(t) = entry {
+                t.insert(key, parsed);
+            }
         }
     }
 }
@@ -233,6 +441,7 @@ fn walk(value: &toml::Value, schema: &toml::Value, prefix: &str, out: &mut Vec<S
                 format!("{prefix}.{k}")
             };
             match s.get(k) {
+                None if OPTIONAL_KEYS.contains(&path.as_str()) => {}
                 None => out.push(format!("{path}: unknown key")),
                 Some(sub_schema) => walk(sub, sub_schema, &path, out),
             }
@@ -251,6 +460,26 @@ mod tests {
             Config::from_toml(text, "config/weir.toml").unwrap(),
             Config::default()
         );
+    }
+
+    #[test]
+    fn environment_overrides_keys_and_unknown_names_are_problems() {
+        let env = [
+            ("WEIR_SERVER_LISTEN".to_string(), "0.0.0.0:9000".to_string()),
+            ("WEIR_STORE_CACHE_MB".to_string(), "64".to_string()),
+            (
+                "WEIR_ROUTING_DESK_CHECK_PROBABILITY".to_string(),
+                "0.2".to_string(),
+            ),
+            ("PATH".to_string(), "/bin".to_string()),
+        ];
+        let c = Config::from_toml_with_env("", "t", env.into_iter()).unwrap();
+        assert_eq!(c.server.listen, "0.0.0.0:9000");
+        assert_eq!(c.store.cache_mb, 64);
+        assert_eq!(c.routing.desk_check_probability, Some(0.2));
+        let env = [("WEIR_SERVER_COLOUR".to_string(), "red".to_string())];
+        let err = Config::from_toml_with_env("", "t", env.into_iter()).unwrap_err();
+        assert!(err.problems[0].contains("WEIR_SERVER_COLOUR"), "{err}");
     }
 
     #[test]

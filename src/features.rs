@@ -144,7 +144,8 @@ catalogue! {
     LineHome = "line_home", "1 for home, 0 for motor",
         |_| "home claim".to_string();
     PartyCount = "party_count", "number of parties named on the claim",
-        |v| format!("{} parties named on the claim", n(v));
+        |v| if n(v) == 1 { "only one party named on the claim".to_string() }
+            else { format!("{} parties named on the claim", n(v)) };
     NewPolicyLoss = "loss_within_30_days_of_start", "1 if the loss is dated less than 30 days after the policy started (or before it)",
         |_| "loss within 30 days of the policy starting".to_string();
     LateReport = "reported_after_30_days", "1 if the claim was reported more than 30 days after the loss",

@@ -18,18 +18,33 @@
 //!   (PSI, KS), all pure.
 //! * [`train`]: offline training with a time-ordered hold-out, k-fold cross-validation,
 //!   class balancing, calibration and an honest report.
-//! * [`config`]: the TOML configuration; [`demo_data`]: an invented scenario for trying it out.
+//! * [`rules`]: rules from a reviewed file, and the combination of scores and rules into a
+//!   queue and a priority.
+//! * [`store`]: the embedded sled store (atomic multi-tree writes, group-committed flushes);
+//!   [`service`]: intake and queue operations on it; [`http`]: the thin axum layer;
+//!   [`server`]: start-up and shutdown; [`telemetry`]: metrics and logs.
+//! * [`config`]: the TOML configuration; [`demo_data`]: an invented scenario for trying it out;
+//!   [`demo`]: the whole loop on it; [`client`]: a small HTTP client for the demo and tests.
 //!
-//! The scoring core (`claim` → `features` → `model` + `outliers`) is pure: no I/O, no clock.
+//! The scoring core (`claim` → `features` → `model` + `outliers` → `rules`) is pure: no I/O, no
+//! clock. The service and the training command both call it.
 
 pub mod claim;
 pub mod cli;
+pub mod client;
 pub mod config;
+pub mod demo;
 pub mod demo_data;
 pub mod features;
 pub mod feedback;
+pub mod http;
 pub mod metrics;
 pub mod model;
 pub mod monitor;
 pub mod outliers;
+pub mod rules;
+pub mod server;
+pub mod service;
+pub mod store;
+pub mod telemetry;
 pub mod train;

@@ -21,6 +21,29 @@ struct Cli {
 
 #[derive(Subcommand)]
 enum Command {
+    /// Run the whole loop on the invented demo scenario: generate claims, train, serve, replay
+    /// the claims through the HTTP intake, print the top of each review queue.
+    Demo {
+        /// Folder for the demo's claims, model, rules and sled store.
+        #[arg(long, default_value = "weir-demo")]
+        dir: PathBuf,
+        #[arg(long, default_value_t = 6_000)]
+        claims: usize,
+        #[arg(long, default_value_t = 1)]
+        seed: u64,
+        /// Keep serving after the replay, until Ctrl-C.
+        #[arg(long)]
+        keep_serving: bool,
+        /// Address to serve on (port 0: any free port).
+        #[arg(long, default_value = "127.0.0.1:0")]
+        listen: String,
+    },
+    /// Serve the HTTP API on the embedded sled store.
+    Serve {
+        /// Configuration file (defaults and WEIR_* environment overrides apply).
+        #[arg(long)]
+        config: Option<PathBuf>,
+    },
     /// Write the invented demo scenario: claims with ground-truth outcomes.
     DemoData {
         /// Folder to write claims.ndjson and truth.csv into.
@@ -82,8 +105,39 @@ fn main() {
     }
 }
 
+fn runtime() -> Result<tokio::runtime::Runtime> {
+    tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()
+        .context("cannot start the async runtime")
+}
+
 fn run(cli: Cli) -> Result<()> {
     match cli.command {
+        Command::Demo {
+            dir,
+            claims,
+            seed,
+            keep_serving,
+            listen,
+        } => runtime()?.block_on(weir::demo::run(weir::demo::DemoOptions {
+            dir,
+            claims,
+            seed,
+            keep_serving,
+            listen,
+        })),
+        Command::Serve { config } => {
+            let config = Config::load(config.as_deref())?;
+            weir::telemetry::init_logs(config.server.log_format);
+            runtime()?.block_on(async move {
+                let (svc, settings) = weir::server::build(&config)?;
+                let (listener, addr) = weir::server::bind(&config.server.listen).await?;
+                tracing::info!(%addr, model = svc.model().version(), rules = %svc.rules().version, "listening");
+                println!("weir listening on http://{addr}");
+                weir::server::run(svc, settings, listener, weir::server::shutdown_signal()).await
+            })
+        }
         Command::DemoData { out, claims, seed } => demo_data(&out, claims, seed),
         Command::Train {
             data,

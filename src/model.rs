@@ -570,7 +570,8 @@ impl Model {
     }
 
     fn reasons(&self, x: &[f64], contrib: &[f64]) -> Vec<Reason> {
-        let mut order: Vec<usize> = (0..contrib.len()).filter(|&i| contrib[i] > 0.05).collect();
+        // Only features that move the log-odds noticeably (a factor of about 1.2 in the odds).
+        let mut order: Vec<usize> = (0..contrib.len()).filter(|&i| contrib[i] > 0.2).collect();
         order.sort_by(|&a, &b| contrib[b].total_cmp(&contrib[a]));
         order
             .into_iter()

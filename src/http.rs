@@ -1,0 +1,647 @@
+//! HTTP routes (axum), thin: each handler unpacks the request, calls [`Service`], and maps the
+//! result. Every error is an RFC 9457 problem+json body; 4xx bodies name the field, 5xx bodies
+//! hide internals (the cause is logged with the request id).
+
+use crate::claim::{Claim, ClaimError, FieldError};
+use crate::rules::Queue;
+use crate::service::{Decision, Service, ServiceError};
+use crate::store::IntakeStatus;
+use axum::body::{Body, Bytes};
+use axum::extract::{Path, Query, Request, State};
+use axum::http::{HeaderMap, HeaderValue, StatusCode, header};
+use axum::middleware::{self, Next};
+use axum::response::{IntoResponse, Response};
+use axum::routing::{get, post};
+use axum::{Json, Router};
+use futures_util::StreamExt;
+use http_body_util::{BodyExt, Limited};
+use serde::{Deserialize, Serialize};
+use serde_json::json;
+use std::sync::Arc;
+use std::sync::atomic::{AtomicU64, Ordering};
+
+/// Settings the HTTP layer needs besides the service.
+#[derive(Debug, Clone)]
+pub struct HttpSettings {
+    pub body_limit_bytes: usize,
+    pub batch_limit_bytes: usize,
+    pub batch_line_bytes: usize,
+    pub capacities: [(Queue, f64); 3],
+}
+
+#[derive(Clone)]
+struct AppState {
+    svc: Service,
+    settings: Arc<HttpSettings>,
+}
+
+/// Every error the API can answer with. One mapping to HTTP, no catch-all: a new variant must
+/// be given its status here.
+#[derive(Debug, thiserror::Error)]
+pub enum AppError {
+    #[error("request body is not valid JSON")]
+    NotJson(ClaimError),
+    #[error("the claim has {} problem(s)", .0.len())]
+    InvalidClaim(Vec<FieldError>),
+    #[error("invalid request")]
+    BadRequest(Vec<FieldError>),
+    #[error("{what} {id:?} not found")]
+    NotFound { what: &'static str, id: String },
+    #[error("request body larger than {limit} bytes")]
+    TooLarge { limit: usize },
+    #[error("content type must be {expected}")]
+    MediaType { expected: &'static str },
+    #[error("method not allowed on this route")]
+    Method,
+    #[error("internal error")]
+    Internal(String),
+}
+
+impl From<ServiceError> for AppError {
+    fn from(e: ServiceError) -> Self {
+        AppError::Internal(e.to_string())
+    }
+}
+
+#[derive(Serialize, Deserialize)]
+pub struct Problem {
+    #[serde(rename = "type")]
+    pub kind: String,
+    pub title: String,
+    pub status: u16,
+    pub detail: String,
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub errors: Vec<FieldError>,
+}
+
+fn problem_response(
+    status: StatusCode,
+    kind: &str,
+    detail: String,
+    errors: Vec<FieldError>,
+) -> Response {
+    let body = Problem {
+        kind: format!("urn:weir:problem:{kind}"),
+        title: status.canonical_reason().unwrap_or("error").to_string(),
+        status: status.as_u16(),
+        detail,
+        errors,
+    };
+    let mut r = (status, Json(body)).into_response();
+    r.headers_mut().insert(
+        header::CONTENT_TYPE,
+        HeaderValue::from_static("application/problem+json"),
+    );
+    r
+}
+
+impl AppError {
+    fn status_and_kind(&self) -> (StatusCode, &'static str) {
+        match self {
+            AppError::NotJson(_) => (StatusCode::BAD_REQUEST, "invalid-json"),
+            AppError::InvalidClaim(_) => (StatusCode::UNPROCESSABLE_ENTITY, "invalid-claim"),
+            AppError::BadRequest(_) => (StatusCode::BAD_REQUEST, "invalid-request"),
+            AppError::NotFound { .. } => (StatusCode::NOT_FOUND, "not-found"),
+            AppError::TooLarge { .. } => (StatusCode::PAYLOAD_TOO_LARGE, "too-large"),
+            AppError::MediaType { .. } => (StatusCode::UNSUPPORTED_MEDIA_TYPE, "media-type"),
+            AppError::Method => (StatusCode::METHOD_NOT_ALLOWED, "method"),
+            AppError::Internal(_) => (StatusCode::INTERNAL_SERVER_ERROR, "internal"),
+        }
+    }
+}
+
+impl IntoResponse for AppError {
+    fn into_response(self) -> Response {
+        let (status, kind) = self.status_and_kind();
+        let (detail, errors) = match self {
+            AppError::NotJson(e) => (e.to_string(), e.field_errors()),
+            AppError::InvalidClaim(errs) => (
+                format!("the claim has {} problem(s); see errors", errs.len()),
+                errs,
+            ),
+            AppError::BadRequest(errs) => ("invalid request; see errors".into(), errs),
+            AppError::Internal(cause) => {
+                tracing::error!(%cause, "internal error");
+                (
+                    "the service could not complete the request; it has been logged".into(),
+                    vec![],
+                )
+            }
+            other => (other.to_string(), vec![]),
+        };
+        problem_response(status, kind, detail, errors)
+    }
+}
+
+fn reject_reason(e: &AppError) -> Option<&'static str> {
+    match e {
+        AppError::NotJson(_) => Some("invalid_json"),
+        AppError::InvalidClaim(_) => Some("invalid_claim"),
+        AppError::TooLarge { .. } => Some("too_large"),
+        AppError::MediaType { .. } => Some("wrong_media_type"),
+        _ => None,
+    }
+}
+
+fn require_type(headers: &HeaderMap, expected: &'static str) -> Result<(), AppError> {
+    let ct = headers
+        .get(header::CONTENT_TYPE)
+        .and_then(|v| v.to_str().ok())
+        .unwrap_or("");
+    let essence = ct.split(';').next().unwrap_or("").trim();
+    if essence.eq_ignore_ascii_case(expected) {
+        Ok(())
+    } else {
+        Err(AppError::MediaType { expected })
+    }
+}
+
+async fn read_body(body: Body, limit: usize) -> Result<Bytes, AppError> {
+    match Limited::new(body, limit).collect().await {
+        Ok(c) => Ok(c.to_bytes()),
+        Err(e) if e.is::<http_body_util::LengthLimitError>() => Err(AppError::TooLarge { limit }),
+        Err(e) => Err(AppError::BadRequest(vec![FieldError {
+            field: String::new(),
+            problem: format!("could not read the request body: {e}"),
+        }])),
+    }
+}
+
+pub fn parse_claim(bytes: &[u8]) -> Result<Claim, AppError> {
+    Claim::from_json(bytes).map_err(|e| match e {
+        ClaimError::Invalid(errs) => AppError::InvalidClaim(errs),
+        e @ ClaimError::NotJson { .. } => AppError::NotJson(e),
+    })
+}
+
+async fn post_claim(State(st): State<AppState>, headers: HeaderMap, body: Body) -> Response {
+    let result = async {
+        require_type(&headers, "application/json")?;
+        let bytes = read_body(body, st.settings.body_limit_bytes).await?;
+        let claim = parse_claim(&bytes)?;
+        Ok::<Decision, AppError>(st.svc.intake(claim, chrono::Utc::now()).await?)
+    }
+    .await;
+    match result {
+        Ok(d) => {
+            let status = if d.status == IntakeStatus::Duplicate {
+                StatusCode::OK
+            } else {
+                StatusCode::CREATED
+            };
+            (status, Json(d)).into_response()
+        }
+        Err(e) => {
+            if let Some(r) = reject_reason(&e) {
+                st.svc.metrics.claims_rejected.with_label_values(&[r]).inc();
+            }
+            e.into_response()
+        }
+    }
+}
+
+/// Claims decided in a batch before one shared wait for the disk.
+const BATCH_CHUNK: usize = 256;
+
+/// Newline-delimited claims in, one line out per line in (a decision, or a problem with the
+/// line number). Lines are decided in order; output for a chunk of lines is sent only once
+/// those decisions are on disk. A line over the line limit, or a body over the batch limit,
+/// is reported and ends the batch.
+async fn post_batch(State(st): State<AppState>, headers: HeaderMap, body: Body) -> Response {
+    if let Err(e) = require_type(&headers, "application/x-ndjson") {
+        st.svc
+            .metrics
+            .claims_rejected
+            .with_label_values(&["wrong_media_type"])
+            .inc();
+        return e.into_response();
+    }
+    let (tx, rx) = tokio::sync::mpsc::channel::<Result<Bytes, std::io::Error>>(4);
+    tokio::spawn(async move {
+        let mut stream = body.into_data_stream();
+        let mut buf: Vec<u8> = Vec::new();
+        let mut line_no = 0usize;
+        let mut total = 0usize;
+        let mut pending: Vec<serde_json::Value> = Vec::new();
+        let s = &st.settings;
+        let emit = |v: serde_json::Value, out: &mut Vec<serde_json::Value>| out.push(v);
+        let mut stop = false;
+        loop {
+            let chunk = if stop { None } else { stream.next().await };
+            let at_end = chunk.is_none();
+            match chunk {
+                Some(Ok(bytes)) => {
+                    total += bytes.len();
+                    buf.extend_from_slice(&bytes);
+                }
+                Some(Err(e)) => {
+                    emit(
+                        json!({"line": line_no + 1, "problem": {"status": 400, "detail": format!("could not read the body: {e}")}}),
+                        &mut pending,
+                    );
+                    stop = true;
+                }
+                None => {}
+            }
+            if total > s.batch_limit_bytes && !stop {
+                let e = AppError::TooLarge {
+                    limit: s.batch_limit_bytes,
+                };
+                emit(problem_line(line_no + 1, &e), &mut pending);
+                stop = true;
+                buf.clear();
+            }
+            // Complete lines (and the last, unterminated one at the end of the body).
+            let mut start = 0;
+            while let Some(pos) = buf[start..].iter().position(|&b| b == b'\n') {
+                let line = buf[start..start + pos].to_vec();
+                start += pos + 1;
+                line_no += 1;
+                handle_line(&st, &line, line_no, &mut pending);
+            }
+            buf.drain(..start);
+            if buf.len() > s.batch_line_bytes && !stop {
+                line_no += 1;
+                let e = AppError::TooLarge {
+                    limit: s.batch_line_bytes,
+                };
+                emit(problem_line(line_no, &e), &mut pending);
+                stop = true;
+                buf.clear();
+            }
+            if (at_end || stop) && !buf.is_empty() {
+                let line = std::mem::take(&mut buf);
+                line_no += 1;
+                handle_line(&st, &line, line_no, &mut pending);
+            }
+            if pending.len() >= BATCH_CHUNK || at_end || stop {
+                st.svc.store.flusher.durable().await;
+                let mut out = Vec::new();
+                for v in pending.drain(..) {
+                    out.extend_from_slice(v.to_string().as_bytes());
+                    out.push(b'\n');
+                }
+                if !out.is_empty() && tx.send(Ok(Bytes::from(out))).await.is_err() {
+                    return; // client went away; what was decided is stored
+                }
+            }
+            if at_end || stop {
+                return;
+            }
+        }
+    });
+    let stream = tokio_stream_from(rx);
+    let mut r = Response::new(Body::from_stream(stream));
+    r.headers_mut().insert(
+        header::CONTENT_TYPE,
+        HeaderValue::from_static("application/x-ndjson"),
+    );
+    r
+}
+
+fn problem_line(line: usize, e: &AppError) -> serde_json::Value {
+    let (status, kind) = e.status_and_kind();
+    let errors = match e {
+        AppError::NotJson(c) => c.field_errors(),
+        AppError::InvalidClaim(v) => v.clone(),
+        _ => vec![],
+    };
+    json!({"line": line, "problem": {"type": format!("urn:weir:problem:{kind}"),
+        "status": status.as_u16(), "detail": e.to_string(), "errors": errors}})
+}
+
+fn tokio_stream_from(
+    mut rx: tokio::sync::mpsc::Receiver<Result<Bytes, std::io::Error>>,
+) -> impl futures_util::Stream<Item = Result<Bytes, std::io::Error>> {
+    futures_util::stream::poll_fn(move |cx| rx.poll_recv(cx))
+}
+
+fn handle_line(st: &AppState, line: &[u8], line_no: usize, pending: &mut Vec<serde_json::Value>) {
+    if line.iter().all(u8::is_ascii_whitespace) {
+        return;
+    }
+    match parse_claim(line) {
+        Ok(claim) => match st.svc.decide(claim, chrono::Utc::now()) {
+            Ok((rec, status)) => {
+                let mut v =
+                    serde_json::to_value(Decision::from_record(&rec, status)).unwrap_or_default();
+                v["line"] = json!(line_no);
+                pending.push(v);
+            }
+            Err(e) => pending.push(problem_line(line_no, &AppError::from(e))),
+        },
+        Err(e) => {
+            if let Some(r) = reject_reason(&e) {
+                st.svc.metrics.claims_rejected.with_label_values(&[r]).inc();
+            }
+            pending.push(problem_line(line_no, &e));
+        }
+    }
+}
+
+fn check_id(field: &str, id: &str) -> Result<(), AppError> {
+    let ok = !id.is_empty()
+        && id.len() <= crate::claim::MAX_STRING_BYTES
+        && !id.chars().any(char::is_control);
+    if ok {
+        Ok(())
+    } else {
+        Err(AppError::BadRequest(vec![FieldError {
+            field: field.into(),
+            problem: "not a valid id".into(),
+        }]))
+    }
+}
+
+#[derive(Serialize)]
+struct ClaimView {
+    claim_id: String,
+    decision: Decision,
+    claim: Claim,
+    revisions: Vec<RevisionSummary>,
+    features: std::collections::BTreeMap<String, f64>,
+    rules_fired: Vec<String>,
+    linked_claims: Vec<Linked>,
+}
+
+#[derive(Serialize)]
+struct RevisionSummary {
+    revision: u32,
+    decided_at: String,
+    queue: Queue,
+    model_probability: f64,
+    content_hash: String,
+}
+
+#[derive(Serialize)]
+struct Linked {
+    via: String,
+    claim_id: String,
+}
+
+async fn get_claim(
+    State(st): State<AppState>,
+    Path(id): Path<String>,
+) -> Result<Response, AppError> {
+    check_id("claim_id", &id)?;
+    let revs = st.svc.store.revisions(&id).map_err(ServiceError::from)?;
+    let Some(last) = revs.last() else {
+        return Err(AppError::NotFound { what: "claim", id });
+    };
+    let linked = st
+        .svc
+        .store
+        .linked_claims(&last.claim, 365 * 86_400)
+        .map_err(ServiceError::from)?;
+    let view = ClaimView {
+        claim_id: id.clone(),
+        decision: Decision::from_record(last, IntakeStatus::New),
+        claim: last.claim.clone(),
+        revisions: revs
+            .iter()
+            .map(|r| RevisionSummary {
+                revision: r.revision,
+                decided_at: r.decided_at.clone(),
+                queue: r.queue,
+                model_probability: r.model_probability,
+                content_hash: r.content_hash.clone(),
+            })
+            .collect(),
+        features: last.features.clone(),
+        rules_fired: last.rules_fired.clone(),
+        linked_claims: linked
+            .into_iter()
+            .map(|(via, claim_id)| Linked { via, claim_id })
+            .collect(),
+    };
+    Ok(Json(view).into_response())
+}
+
+fn queue_param(name: &str) -> Result<Queue, AppError> {
+    match Queue::parse(name) {
+        Some(q) if q != Queue::NoReview => Ok(q),
+        _ => Err(AppError::NotFound {
+            what: "queue",
+            id: name.chars().take(64).collect(),
+        }),
+    }
+}
+
+async fn list_queues(State(st): State<AppState>) -> Json<serde_json::Value> {
+    let queues: Vec<_> = st
+        .settings
+        .capacities
+        .iter()
+        .map(|(q, cap)| json!({"queue": q, "depth": st.svc.store.queue_depth(*q), "daily_capacity": cap}))
+        .collect();
+    Json(json!({ "queues": queues }))
+}
+
+#[derive(Deserialize)]
+struct PageQuery {
+    offset: Option<String>,
+    limit: Option<String>,
+}
+
+fn number(field: &str, v: Option<&String>, default: usize, max: usize) -> Result<usize, AppError> {
+    match v {
+        None => Ok(default),
+        Some(s) => match s.parse::<usize>() {
+            Ok(n) if n <= max => Ok(n),
+            _ => Err(AppError::BadRequest(vec![FieldError {
+                field: field.into(),
+                problem: format!("expected a whole number from 0 to {max}"),
+            }])),
+        },
+    }
+}
+
+async fn list_queue(
+    State(st): State<AppState>,
+    Path(name): Path<String>,
+    Query(q): Query<PageQuery>,
+) -> Result<Json<serde_json::Value>, AppError> {
+    let queue = queue_param(&name)?;
+    let offset = number("offset", q.offset.as_ref(), 0, 10_000_000)?;
+    let limit = number("limit", q.limit.as_ref(), 50, 500)?;
+    let items = st
+        .svc
+        .store
+        .queue_page(queue, offset, limit)
+        .map_err(ServiceError::from)?;
+    Ok(Json(json!({
+        "queue": queue,
+        "depth": st.svc.store.queue_depth(queue),
+        "offset": offset,
+        "limit": limit,
+        "items": items,
+    })))
+}
+
+async fn lease(
+    State(st): State<AppState>,
+    Path(name): Path<String>,
+    headers: HeaderMap,
+    body: Body,
+) -> Result<Response, AppError> {
+    let queue = queue_param(&name)?;
+    require_type(&headers, "application/json")?;
+    let bytes = read_body(body, st.settings.body_limit_bytes).await?;
+    let v: serde_json::Value = serde_json::from_slice(&bytes).map_err(|e| {
+        AppError::BadRequest(vec![FieldError {
+            field: String::new(),
+            problem: format!("not valid JSON: {e}"),
+        }])
+    })?;
+    let holder = match v.get("investigator").and_then(|x| x.as_str()) {
+        Some(h) if check_id("investigator", h).is_ok() => h.to_string(),
+        _ => {
+            return Err(AppError::BadRequest(vec![FieldError {
+                field: "investigator".into(),
+                problem: "required: the id of the investigator taking the item".into(),
+            }]));
+        }
+    };
+    match st.svc.lease(queue, &holder, chrono::Utc::now()).await? {
+        Some(item) => Ok(Json(item).into_response()),
+        None => Ok(StatusCode::NO_CONTENT.into_response()),
+    }
+}
+
+async fn release(
+    State(st): State<AppState>,
+    Path((name, claim_id)): Path<(String, String)>,
+) -> Result<Response, AppError> {
+    let queue = queue_param(&name)?;
+    check_id("claim_id", &claim_id)?;
+    if st.svc.release(queue, &claim_id).await? {
+        Ok(Json(json!({"queue": queue, "claim_id": claim_id, "released": true})).into_response())
+    } else {
+        Err(AppError::NotFound {
+            what: "queue item",
+            id: claim_id,
+        })
+    }
+}
+
+async fn healthz() -> Json<serde_json::Value> {
+    Json(json!({"status": "ok"}))
+}
+
+async fn readyz(State(st): State<AppState>) -> Json<serde_json::Value> {
+    Json(json!({
+        "status": "ready",
+        "store": {"claims": st.svc.store.claim_count()},
+        "model": st.svc.model().version(),
+        "rules": st.svc.rules().version,
+    }))
+}
+
+async fn metrics(State(st): State<AppState>) -> Response {
+    let mut r = st.svc.metrics.render().into_response();
+    r.headers_mut().insert(
+        header::CONTENT_TYPE,
+        HeaderValue::from_static("text/plain; version=0.0.4"),
+    );
+    r
+}
+
+pub const OPENAPI: &str = include_str!("openapi.json");
+
+async fn openapi() -> Response {
+    let mut r = OPENAPI.into_response();
+    r.headers_mut().insert(
+        header::CONTENT_TYPE,
+        HeaderValue::from_static("application/json"),
+    );
+    r
+}
+
+async fn not_found() -> AppError {
+    AppError::NotFound {
+        what: "route",
+        id: String::new(),
+    }
+}
+
+async fn method_not_allowed() -> AppError {
+    AppError::Method
+}
+
+static REQUEST_SEQ: AtomicU64 = AtomicU64::new(0);
+
+/// Request id: the caller's `x-request-id` when it is a sane token, else a new one; put on the
+/// response and on every log line of the request.
+async fn request_id(State(st): State<AppState>, mut req: Request, next: Next) -> Response {
+    let given = req
+        .headers()
+        .get("x-request-id")
+        .and_then(|v| v.to_str().ok())
+        .filter(|s| !s.is_empty() && s.len() <= 64 && s.bytes().all(|b| b.is_ascii_graphic()))
+        .map(String::from);
+    let id = given.unwrap_or_else(|| {
+        format!(
+            "{:x}-{:x}",
+            std::process::id(),
+            REQUEST_SEQ.fetch_add(1, Ordering::Relaxed)
+        )
+    });
+    if let Ok(v) = HeaderValue::from_str(&id) {
+        req.headers_mut().insert("x-request-id", v);
+    }
+    let method = req.method().clone();
+    // Paths carry ids (claim, queue) but never claim content.
+    let path: String = req.uri().path().chars().take(200).collect();
+    let span = tracing::info_span!("request", request_id = %id, %method, %path);
+    let t0 = std::time::Instant::now();
+    let mut resp = {
+        use tracing::Instrument;
+        next.run(req).instrument(span.clone()).await
+    };
+    let status = resp.status();
+    st.svc
+        .metrics
+        .http_requests
+        .with_label_values(&[match status.as_u16() {
+            200..=299 => "2xx",
+            400..=499 => "4xx",
+            500..=599 => "5xx",
+            _ => "other",
+        }])
+        .inc();
+    span.in_scope(|| {
+        tracing::info!(
+            status = status.as_u16(),
+            millis = t0.elapsed().as_secs_f64() * 1000.0,
+            "response"
+        )
+    });
+    if let Ok(v) = HeaderValue::from_str(&id) {
+        resp.headers_mut().insert("x-request-id", v);
+    }
+    resp
+}
+
+/// The application: every route, its error mapping and its middleware.
+pub fn app(svc: Service, settings: HttpSettings) -> Router {
+    let state = AppState {
+        svc,
+        settings: Arc::new(settings),
+    };
+    Router::new()
+        .route("/healthz", get(healthz))
+        .route("/readyz", get(readyz))
+        .route("/metrics", get(metrics))
+        .route("/v1/openapi.json", get(openapi))
+        .route("/v1/claims", post(post_claim))
+        .route("/v1/claims/batch", post(post_batch))
+        .route("/v1/claims/{claim_id}", get(get_claim))
+        .route("/v1/queues", get(list_queues))
+        .route("/v1/queues/{queue}", get(list_queue))
+        .route("/v1/queues/{queue}/lease", post(lease))
+        .route("/v1/queues/{queue}/items/{claim_id}/release", post(release))
+        .fallback(not_found)
+        .method_not_allowed_fallback(method_not_allowed)
+        .layer(middleware::from_fn_with_state(state.clone(), request_id))
+        .with_state(state)
+}

@@ -1,0 +1,90 @@
+//! `weir serve`: load configuration, open the store, load the model and rules, serve until
+//! SIGTERM or Ctrl-C, finish in-flight requests, flush the store.
+
+use crate::config::Config;
+use crate::http::{self, HttpSettings};
+use crate::model::{Model, ModelArtifact};
+use crate::rules::{Queue, RuleSet};
+use crate::service::Service;
+use crate::store::Store;
+use anyhow::{Context, Result};
+use std::net::SocketAddr;
+
+/// Everything loaded and checked, ready to bind. Fails with every reason it can find.
+pub fn build(config: &Config) -> Result<(Service, HttpSettings)> {
+    let artifact = ModelArtifact::read(&config.paths.model)
+        .with_context(|| format!("model {}", config.paths.model.display()))?;
+    let model =
+        Model::new(artifact).with_context(|| format!("model {}", config.paths.model.display()))?;
+    let rules = RuleSet::read(&config.paths.rules)?;
+    let store = Store::open(&config.store.path, config.store.cache_mb * 1024 * 1024)
+        .with_context(|| format!("store {}", config.store.path.display()))?;
+    let svc = Service::new(
+        store,
+        model,
+        rules,
+        config.routing.clone(),
+        i64::try_from(config.queues.lease_minutes * 60).unwrap_or(i64::MAX),
+    );
+    let settings = HttpSettings {
+        body_limit_bytes: config.server.body_limit_bytes,
+        batch_limit_bytes: config.server.batch_limit_bytes,
+        batch_line_bytes: config.server.batch_line_bytes,
+        capacities: [
+            (Queue::Investigate, config.queues.investigate_capacity),
+            (Queue::DeskCheck, config.queues.desk_check_capacity),
+            (Queue::Audit, config.queues.audit_capacity),
+        ],
+    };
+    Ok((svc, settings))
+}
+
+/// Serve on an already bound listener until `shutdown` resolves.
+pub async fn run(
+    svc: Service,
+    settings: HttpSettings,
+    listener: tokio::net::TcpListener,
+    shutdown: impl std::future::Future<Output = ()> + Send + 'static,
+) -> Result<()> {
+    svc.store.start_flusher();
+    let store = svc.store.clone();
+    let app = http::app(svc, settings);
+    axum::serve(listener, app)
+        .with_graceful_shutdown(shutdown)
+        .await
+        .context("server")?;
+    store.flush().context("final store flush")?;
+    tracing::info!("stopped; store flushed");
+    Ok(())
+}
+
+pub async fn bind(addr: &str) -> Result<(tokio::net::TcpListener, SocketAddr)> {
+    let listener = tokio::net::TcpListener::bind(addr)
+        .await
+        .with_context(|| format!("cannot listen on {addr}"))?;
+    let local = listener.local_addr()?;
+    Ok((listener, local))
+}
+
+/// Resolves on SIGTERM or Ctrl-C.
+pub async fn shutdown_signal() {
+    let ctrl_c = async {
+        let _ = tokio::signal::ctrl_c().await;
+    };
+    #[cfg(unix)]
+    let term = async {
+        match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+            Ok(mut s) => {
+                s.recv().await;
+            }
+            Err(_) => std::future::pending::<()>().await,
+        }
+    };
+    #[cfg(not(unix))]
+    let term = std::future::pending::<()>();
+    tokio::select! {
+        _ = ctrl_c => {},
+        _ = term => {},
+    }
+    tracing::info!("shutting down: finishing requests in flight");
+}

@@ -1,0 +1,530 @@
+//! The embedded store (sled): its trees, their keys, atomic multi-tree writes, and durable
+//! acknowledgement with group commit.
+//!
+//! Trees and keys (`\0` separates parts; ids never contain control characters):
+//!
+//! | tree | key | value |
+//! |---|---|---|
+//! | `claims` | claim id | [`ClaimHead`]: latest revision, content hash, queue |
+//! | `revisions` | claim id `\0` revision (u32, big-endian) | [`DecisionRecord`] (the audit record, with the claim) |
+//! | `history` | entity `\0` time (i64, order-preserving) claim hash (u64) | claimant hash, amount |
+//! | `queue_items` | queue `\0` claim id | [`QueueItem`] |
+//! | `queue_rank` | queue `\0` rank (priority, descending) claim id | empty |
+//!
+//! Every intake writes all of these in one sled transaction, so a reader (or a restart) sees a
+//! claim with its history, decision and queue entry, or none of them. Durability: sled writes
+//! go to its log in memory and reach disk on `flush`; [`Flusher`] makes every acknowledgement
+//! wait for a flush that covers its write, and lets one flush cover every write that came in
+//! while the previous flush ran (group commit), so a busy service does not pay one disk sync
+//! per request.
+
+use crate::claim::Claim;
+use crate::features::{HistoryEvent, HistoryView, events_of};
+use crate::model::Reason;
+use crate::rules::Queue;
+use serde::{Deserialize, Serialize};
+use sled::Transactional;
+use sled::transaction::{ConflictableTransactionError, TransactionError};
+use std::collections::BTreeMap;
+use std::sync::Arc;
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::time::Instant;
+use tokio::sync::{Notify, watch};
+
+#[derive(Debug, thiserror::Error)]
+pub enum StoreError {
+    #[error("store: {0}")]
+    Sled(#[from] sled::Error),
+    #[error("store record is damaged ({what}): {detail}")]
+    Corrupt { what: String, detail: String },
+    #[error("store flush failed: {0}")]
+    Flush(String),
+}
+
+impl<E: std::fmt::Display> From<TransactionError<E>> for StoreError {
+    fn from(e: TransactionError<E>) -> Self {
+        match e {
+            TransactionError::Storage(s) => StoreError::Sled(s),
+            TransactionError::Abort(a) => StoreError::Corrupt {
+                what: "transaction".into(),
+                detail: a.to_string(),
+            },
+        }
+    }
+}
+
+/// The latest state of one claim.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ClaimHead {
+    pub revision: u32,
+    pub content_hash: String,
+    pub queue: Queue,
+}
+
+/// The audit record of one decision: enough to re-score the claim exactly.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct DecisionRecord {
+    pub claim_id: String,
+    pub revision: u32,
+    pub decided_at: String,
+    pub queue: Queue,
+    pub priority: f64,
+    pub expected_value: f64,
+    pub model_probability: f64,
+    pub outlier_score: f64,
+    pub reasons: Vec<Reason>,
+    pub rules_fired: Vec<String>,
+    pub model_version: String,
+    pub rules_version: String,
+    pub content_hash: String,
+    /// Every catalogue feature, by name, as computed at decision time.
+    pub features: BTreeMap<String, f64>,
+    pub claim: Claim,
+}
+
+/// One claim waiting in a review queue.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct QueueItem {
+    pub claim_id: String,
+    pub revision: u32,
+    pub queue: Queue,
+    pub priority: f64,
+    pub claimed_amount: f64,
+    pub currency: String,
+    pub model_probability: f64,
+    pub outlier_score: f64,
+    pub reasons: Vec<Reason>,
+    pub enqueued_at: String,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub lease: Option<Lease>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Lease {
+    pub holder: String,
+    /// Seconds since the Unix epoch when the lease lapses.
+    pub until: i64,
+}
+
+fn sep(parts: &[&[u8]]) -> Vec<u8> {
+    let mut k = Vec::with_capacity(parts.iter().map(|p| p.len() + 1).sum());
+    for (i, p) in parts.iter().enumerate() {
+        if i > 0 {
+            k.push(0);
+        }
+        k.extend_from_slice(p);
+    }
+    k
+}
+
+/// Time as big-endian bytes that sort like the signed value.
+fn time_key(at: i64) -> [u8; 8] {
+    ((at as u64) ^ (1 << 63)).to_be_bytes()
+}
+
+fn history_key(entity: &str, at: i64, claim: u64) -> Vec<u8> {
+    let mut k = sep(&[entity.as_bytes(), &[]]);
+    k.extend_from_slice(&time_key(at));
+    k.extend_from_slice(&claim.to_be_bytes());
+    k
+}
+
+/// Claimant hash, amount, then the claim id itself (for the linked-claims view).
+fn history_value(e: &HistoryEvent, claim_id: &str) -> Vec<u8> {
+    let mut v = Vec::with_capacity(16 + claim_id.len());
+    v.extend_from_slice(&e.claimant.to_le_bytes());
+    v.extend_from_slice(&e.amount.to_le_bytes());
+    v.extend_from_slice(claim_id.as_bytes());
+    v
+}
+
+fn revision_key(claim_id: &str, rev: u32) -> Vec<u8> {
+    sep(&[claim_id.as_bytes(), &rev.to_be_bytes()])
+}
+
+fn item_key(queue: Queue, claim_id: &str) -> Vec<u8> {
+    sep(&[queue.as_str().as_bytes(), claim_id.as_bytes()])
+}
+
+/// Priority as bytes that sort highest first (IEEE 754 total order, inverted).
+fn rank_key(queue: Queue, priority: f64, claim_id: &str) -> Vec<u8> {
+    let bits = priority.to_bits();
+    let ordered = if bits >> 63 == 1 {
+        !bits
+    } else {
+        bits | (1 << 63)
+    };
+    let mut k = sep(&[queue.as_str().as_bytes(), &[]]);
+    k.extend_from_slice(&(!ordered).to_be_bytes());
+    k.extend_from_slice(claim_id.as_bytes());
+    k
+}
+
+fn decode<T: serde::de::DeserializeOwned>(what: &str, bytes: &[u8]) -> Result<T, StoreError> {
+    serde_json::from_slice(bytes).map_err(|e| StoreError::Corrupt {
+        what: what.to_string(),
+        detail: e.to_string(),
+    })
+}
+
+fn encode<T: Serialize>(v: &T) -> Vec<u8> {
+    serde_json::to_vec(v).unwrap_or_default()
+}
+
+/// Group commit: see the module documentation.
+pub struct Flusher {
+    written: AtomicU64,
+    kick: Notify,
+    done: watch::Sender<u64>,
+    pub flush_seconds: prometheus::Histogram,
+}
+
+impl Flusher {
+    fn new() -> Arc<Flusher> {
+        let flush_seconds = prometheus::Histogram::with_opts(
+            prometheus::HistogramOpts::new(
+                "weir_store_flush_seconds",
+                "Time to flush the store to disk (one flush covers every write waiting for it)",
+            )
+            .buckets(vec![
+                0.0005, 0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.25, 1.0,
+            ]),
+        )
+        .unwrap_or_else(|_| unreachable!("static histogram options are valid"));
+        Arc::new(Flusher {
+            written: AtomicU64::new(0),
+            kick: Notify::new(),
+            done: watch::channel(0).0,
+            flush_seconds,
+        })
+    }
+
+    /// Run the flushing loop for `db` until the process ends.
+    pub fn spawn(self: &Arc<Self>, db: sled::Db) {
+        let me = Arc::clone(self);
+        tokio::spawn(async move {
+            loop {
+                me.kick.notified().await;
+                let target = me.written.load(Ordering::SeqCst);
+                let t0 = Instant::now();
+                match db.flush_async().await {
+                    Ok(_) => {
+                        me.flush_seconds.observe(t0.elapsed().as_secs_f64());
+                        me.done.send_if_modified(|d| {
+                            let changed = target > *d;
+                            *d = (*d).max(target);
+                            changed
+                        });
+                    }
+                    Err(e) => {
+                        tracing::error!(error = %e, "store flush failed; retrying");
+                        tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+                        me.kick.notify_one();
+                    }
+                }
+            }
+        });
+    }
+
+    /// Wait until everything written before this call is on disk.
+    pub async fn durable(&self) {
+        let target = self.written.fetch_add(1, Ordering::SeqCst) + 1;
+        self.kick.notify_one();
+        let mut rx = self.done.subscribe();
+        // The sender lives as long as the flusher; an error here means shutdown.
+        let _ = rx.wait_for(|&d| d >= target).await;
+    }
+}
+
+/// The sled store.
+#[derive(Clone)]
+pub struct Store {
+    db: sled::Db,
+    claims: sled::Tree,
+    revisions: sled::Tree,
+    history: sled::Tree,
+    queue_items: sled::Tree,
+    queue_rank: sled::Tree,
+    pub flusher: Arc<Flusher>,
+}
+
+/// What an intake did.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum IntakeStatus {
+    /// First time this claim id was seen.
+    New,
+    /// Same id, same content: the stored decision, nothing changed.
+    Duplicate,
+    /// Same id, new content: re-scored as a new revision.
+    Revised,
+}
+
+impl Store {
+    /// Open (or create) the store in `path`. `cache_bytes` sizes sled's page cache.
+    pub fn open(path: &std::path::Path, cache_bytes: u64) -> Result<Store, StoreError> {
+        let db = sled::Config::new()
+            .path(path)
+            .cache_capacity(cache_bytes)
+            .flush_every_ms(Some(500))
+            .open()?;
+        Ok(Store {
+            claims: db.open_tree("claims")?,
+            revisions: db.open_tree("revisions")?,
+            history: db.open_tree("history")?,
+            queue_items: db.open_tree("queue_items")?,
+            queue_rank: db.open_tree("queue_rank")?,
+            db,
+            flusher: Flusher::new(),
+        })
+    }
+
+    /// Start the group-commit loop (needs a tokio runtime).
+    pub fn start_flusher(&self) {
+        self.flusher.spawn(self.db.clone());
+    }
+
+    pub fn flush(&self) -> Result<(), StoreError> {
+        self.db.flush()?;
+        Ok(())
+    }
+
+    pub fn head(&self, claim_id: &str) -> Result<Option<ClaimHead>, StoreError> {
+        self.claims
+            .get(claim_id.as_bytes())?
+            .map(|v| decode("claim head", &v))
+            .transpose()
+    }
+
+    pub fn decision(&self, claim_id: &str, rev: u32) -> Result<Option<DecisionRecord>, StoreError> {
+        self.revisions
+            .get(revision_key(claim_id, rev))?
+            .map(|v| decode("decision record", &v))
+            .transpose()
+    }
+
+    /// Every revision of a claim, oldest first.
+    pub fn revisions(&self, claim_id: &str) -> Result<Vec<DecisionRecord>, StoreError> {
+        let prefix = sep(&[claim_id.as_bytes(), &[]]);
+        self.revisions
+            .scan_prefix(prefix)
+            .map(|kv| {
+                let (_, v) = kv?;
+                decode("decision record", &v)
+            })
+            .collect()
+    }
+
+    /// Write a decided claim: history, audit record, head and queue entry in one transaction.
+    /// `previous` is the stored record this one revises, if any.
+    pub fn record(
+        &self,
+        rec: &DecisionRecord,
+        previous: Option<&DecisionRecord>,
+        item: Option<&QueueItem>,
+    ) -> Result<(), StoreError> {
+        let new_events = events_of(&rec.claim);
+        let old_events = previous.map(|p| events_of(&p.claim)).unwrap_or_default();
+        let head = encode(&ClaimHead {
+            revision: rec.revision,
+            content_hash: rec.content_hash.clone(),
+            queue: rec.queue,
+        });
+        let record = encode(rec);
+        let item_bytes = item.map(encode);
+        (
+            &self.claims,
+            &self.revisions,
+            &self.history,
+            &self.queue_items,
+            &self.queue_rank,
+        )
+            .transaction(|(claims, revisions, history, items, rank)| {
+                for (entity, e) in &old_events {
+                    history.remove(history_key(entity, e.at, e.claim))?;
+                }
+                if let Some(p) = previous {
+                    items.remove(item_key(p.queue, &p.claim_id))?;
+                    rank.remove(rank_key(p.queue, p.priority, &p.claim_id))?;
+                }
+                for (entity, e) in &new_events {
+                    history.insert(
+                        history_key(entity, e.at, e.claim),
+                        history_value(e, &rec.claim_id),
+                    )?;
+                }
+                revisions.insert(revision_key(&rec.claim_id, rec.revision), record.as_slice())?;
+                claims.insert(rec.claim_id.as_bytes(), head.as_slice())?;
+                if let (Some(it), Some(bytes)) = (item, &item_bytes) {
+                    items.insert(item_key(it.queue, &it.claim_id), bytes.as_slice())?;
+                    rank.insert(rank_key(it.queue, it.priority, &it.claim_id), &[][..])?;
+                }
+                Ok::<(), ConflictableTransactionError<String>>(())
+            })?;
+        Ok(())
+    }
+
+    pub fn queue_item(
+        &self,
+        queue: Queue,
+        claim_id: &str,
+    ) -> Result<Option<QueueItem>, StoreError> {
+        self.queue_items
+            .get(item_key(queue, claim_id))?
+            .map(|v| decode("queue item", &v))
+            .transpose()
+    }
+
+    pub fn queue_depth(&self, queue: Queue) -> usize {
+        self.queue_rank
+            .scan_prefix(sep(&[queue.as_str().as_bytes(), &[]]))
+            .count()
+    }
+
+    /// Items of a queue in priority order, `offset` skipped, at most `limit`.
+    pub fn queue_page(
+        &self,
+        queue: Queue,
+        offset: usize,
+        limit: usize,
+    ) -> Result<Vec<QueueItem>, StoreError> {
+        let prefix = sep(&[queue.as_str().as_bytes(), &[]]);
+        let plen = prefix.len() + 8;
+        let mut out = Vec::new();
+        for kv in self
+            .queue_rank
+            .scan_prefix(&prefix)
+            .skip(offset)
+            .take(limit)
+        {
+            let (k, _) = kv?;
+            let claim_id = String::from_utf8_lossy(&k[plen.min(k.len())..]).into_owned();
+            if let Some(item) = self.queue_item(queue, &claim_id)? {
+                out.push(item);
+            }
+        }
+        Ok(out)
+    }
+
+    /// Lease the highest-priority item not under a live lease. The caller serialises leasing.
+    pub fn lease_next(
+        &self,
+        queue: Queue,
+        holder: &str,
+        now: i64,
+        lease_seconds: i64,
+    ) -> Result<Option<QueueItem>, StoreError> {
+        let prefix = sep(&[queue.as_str().as_bytes(), &[]]);
+        let plen = prefix.len() + 8;
+        for kv in self.queue_rank.scan_prefix(&prefix) {
+            let (k, _) = kv?;
+            let claim_id = String::from_utf8_lossy(&k[plen.min(k.len())..]).into_owned();
+            let Some(mut item) = self.queue_item(queue, &claim_id)? else {
+                continue;
+            };
+            if item.lease.as_ref().is_some_and(|l| l.until > now) {
+                continue;
+            }
+            item.lease = Some(Lease {
+                holder: holder.to_string(),
+                until: now + lease_seconds,
+            });
+            self.queue_items
+                .insert(item_key(queue, &claim_id), encode(&item))?;
+            return Ok(Some(item));
+        }
+        Ok(None)
+    }
+
+    /// Give a leased item back to the queue. `Ok(false)` when there is no such item.
+    pub fn release(&self, queue: Queue, claim_id: &str) -> Result<bool, StoreError> {
+        let Some(mut item) = self.queue_item(queue, claim_id)? else {
+            return Ok(false);
+        };
+        item.lease = None;
+        self.queue_items
+            .insert(item_key(queue, claim_id), encode(&item))?;
+        Ok(true)
+    }
+
+    pub fn claim_count(&self) -> usize {
+        self.claims.len()
+    }
+
+    /// Other claims naming any of this claim's parties, policy or address (not the claimant
+    /// alone), reported within `window_secs` before or after it: the linked-claims view.
+    /// Returns `(entity, claim id)` pairs, sorted.
+    pub fn linked_claims(
+        &self,
+        claim: &Claim,
+        window_secs: i64,
+    ) -> Result<Vec<(String, String)>, StoreError> {
+        let t = claim.event_time();
+        let mut out = std::collections::BTreeSet::new();
+        for key in claim.entity_keys() {
+            let start = history_key(&key, t - window_secs, 0);
+            let end = history_key(&key, t + window_secs + 1, 0);
+            for kv in self.history.range(start..end) {
+                let (_, v) = kv?;
+                let id = String::from_utf8_lossy(v.get(16..).unwrap_or_default()).into_owned();
+                if id != claim.claim_id {
+                    out.insert((key.clone(), id));
+                }
+            }
+        }
+        Ok(out.into_iter().collect())
+    }
+}
+
+impl HistoryView for Store {
+    fn for_each_event(&self, entity: &str, from: i64, to: i64, f: &mut dyn FnMut(&HistoryEvent)) {
+        let start = history_key(entity, from, 0);
+        let end = history_key(entity, to, 0);
+        let plen = entity.len() + 1;
+        for kv in self.history.range(start..end) {
+            let Ok((k, v)) = kv else {
+                // A read error cannot be reported through this trait; the caller's decision
+                // would be made on partial history, so log it loudly.
+                tracing::error!(entity, "history read failed");
+                continue;
+            };
+            if k.len() < plen + 16 || v.len() < 16 {
+                continue;
+            }
+            let at_bits = u64::from_be_bytes(k[plen..plen + 8].try_into().unwrap_or_default());
+            let claim = u64::from_be_bytes(k[plen + 8..plen + 16].try_into().unwrap_or_default());
+            f(&HistoryEvent {
+                at: (at_bits ^ (1 << 63)) as i64,
+                claim,
+                claimant: u64::from_le_bytes(v[..8].try_into().unwrap_or_default()),
+                amount: f64::from_le_bytes(v[8..16].try_into().unwrap_or_default()),
+            });
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn rank_keys_sort_by_priority_descending() {
+        let mut ps = [-5.0, 0.0, 12.5, -0.0, 1e9, -1e9, 3.0];
+        let mut keys: Vec<(Vec<u8>, f64)> = ps
+            .iter()
+            .map(|&p| (rank_key(Queue::DeskCheck, p, "C"), p))
+            .collect();
+        keys.sort_by(|a, b| a.0.cmp(&b.0));
+        ps.sort_by(|a, b| b.total_cmp(a));
+        let got: Vec<f64> = keys.iter().map(|k| k.1).collect();
+        assert_eq!(got, ps.to_vec());
+    }
+
+    #[test]
+    fn time_keys_sort_like_signed_times() {
+        let ts = [-100i64, -1, 0, 1, 1_700_000_000];
+        for w in ts.windows(2) {
+            assert!(time_key(w[0]) < time_key(w[1]));
+        }
+    }
+}

@@ -1,0 +1,125 @@
+//! Prometheus metrics and log set-up. Metric names end in `_total` or `_seconds`; labels come
+//! from small fixed sets (queues, rejection reasons, intake status), never from claim data.
+
+use crate::rules::Queue;
+use prometheus::{
+    Encoder, Histogram, HistogramOpts, IntCounterVec, IntGaugeVec, Opts, Registry, TextEncoder,
+};
+
+/// Why a claim was refused at intake (the `reason` label).
+pub const REJECT_REASONS: [&str; 4] = [
+    "invalid_json",
+    "invalid_claim",
+    "too_large",
+    "wrong_media_type",
+];
+
+#[derive(Clone)]
+pub struct Metrics {
+    pub registry: Registry,
+    /// Claims accepted by intake status (new, duplicate, revised).
+    pub claims_received: IntCounterVec,
+    pub claims_rejected: IntCounterVec,
+    pub decisions: IntCounterVec,
+    pub scoring_seconds: Histogram,
+    pub queue_depth: IntGaugeVec,
+    pub http_requests: IntCounterVec,
+}
+
+fn must<T>(r: prometheus::Result<T>) -> T {
+    // Metric definitions are static; failing here is a programming error caught by any test.
+    r.unwrap_or_else(|e| panic!("metric definition: {e}"))
+}
+
+impl Metrics {
+    pub fn new(flush: &prometheus::Histogram) -> Metrics {
+        let registry = Registry::new();
+        let claims_received = must(IntCounterVec::new(
+            Opts::new(
+                "weir_claims_received_total",
+                "Claims accepted at intake, by status",
+            ),
+            &["status"],
+        ));
+        let claims_rejected = must(IntCounterVec::new(
+            Opts::new(
+                "weir_claims_rejected_total",
+                "Claims refused at intake, by reason",
+            ),
+            &["reason"],
+        ));
+        let decisions = must(IntCounterVec::new(
+            Opts::new("weir_decisions_total", "Decisions written, by queue"),
+            &["queue"],
+        ));
+        let scoring_seconds = must(Histogram::with_opts(
+            HistogramOpts::new(
+                "weir_scoring_seconds",
+                "Time to compute features, score and route one claim (store write excluded)",
+            )
+            .buckets(vec![
+                0.000_01, 0.000_02, 0.000_05, 0.000_1, 0.000_2, 0.000_5, 0.001, 0.002, 0.005, 0.01,
+            ]),
+        ));
+        let queue_depth = must(IntGaugeVec::new(
+            Opts::new("weir_queue_depth", "Items waiting in each review queue"),
+            &["queue"],
+        ));
+        let http_requests = must(IntCounterVec::new(
+            Opts::new("weir_http_requests_total", "HTTP responses by status class"),
+            &["class"],
+        ));
+        for c in [
+            Box::new(claims_received.clone()) as Box<dyn prometheus::core::Collector>,
+            Box::new(claims_rejected.clone()),
+            Box::new(decisions.clone()),
+            Box::new(scoring_seconds.clone()),
+            Box::new(queue_depth.clone()),
+            Box::new(http_requests.clone()),
+            Box::new(flush.clone()),
+        ] {
+            must(registry.register(c));
+        }
+        // Series that exist from the start, so dashboards and alerts see zeros, not gaps.
+        for r in REJECT_REASONS {
+            claims_rejected.with_label_values(&[r]);
+        }
+        for s in ["new", "duplicate", "revised"] {
+            claims_received.with_label_values(&[s]);
+        }
+        for q in Queue::ALL {
+            decisions.with_label_values(&[q.as_str()]);
+        }
+        for q in Queue::WORKED {
+            queue_depth.with_label_values(&[q.as_str()]);
+        }
+        Metrics {
+            registry,
+            claims_received,
+            claims_rejected,
+            decisions,
+            scoring_seconds,
+            queue_depth,
+            http_requests,
+        }
+    }
+
+    pub fn render(&self) -> String {
+        let mut buf = Vec::new();
+        let _ = TextEncoder::new().encode(&self.registry.gather(), &mut buf);
+        String::from_utf8(buf).unwrap_or_default()
+    }
+}
+
+/// Structured logs to standard error: JSON lines or human-readable text. `RUST_LOG` filters.
+pub fn init_logs(format: crate::config::LogFormat) {
+    use tracing_subscriber::EnvFilter;
+    let filter = EnvFilter::try_from_default_env().unwrap_or_else(|_| EnvFilter::new("info"));
+    let builder = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr);
+    let _ = match format {
+        crate::config::LogFormat::Json => builder.json().flatten_event(true).try_init(),
+        crate::config::LogFormat::Text => builder.try_init(),
+    };
+}

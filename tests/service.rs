@@ -1,0 +1,549 @@
+//! The service driven in process (`tower::ServiceExt::oneshot` on `http::app`) and as a real
+//! `weir serve` process on port 0, including a restart on the same sled folder.
+
+use axum::body::Body;
+use axum::http::{Method, Request, StatusCode};
+use http_body_util::BodyExt;
+use serde_json::{Value, json};
+use std::io::Cursor;
+use std::path::{Path, PathBuf};
+use std::sync::OnceLock;
+use tower::ServiceExt;
+use weir::config::Config;
+use weir::http::{self, HttpSettings};
+use weir::model::Model;
+use weir::rules::{Queue, Routing, RuleSet};
+use weir::service::Service;
+use weir::store::Store;
+use weir::train::{self, BadLines};
+
+fn tempdir(tag: &str) -> PathBuf {
+    use std::sync::atomic::{AtomicUsize, Ordering};
+    static N: AtomicUsize = AtomicUsize::new(0);
+    let p = std::env::temp_dir().join(format!(
+        "weir-svc-{tag}-{}-{}",
+        std::process::id(),
+        N.fetch_add(1, Ordering::SeqCst)
+    ));
+    let _ = std::fs::remove_dir_all(&p);
+    std::fs::create_dir_all(&p).unwrap();
+    p
+}
+
+/// A model trained once on invented demo claims, shared by every test.
+fn model_path() -> &'static Path {
+    static PATH: OnceLock<PathBuf> = OnceLock::new();
+    PATH.get_or_init(|| {
+        let claims = weir::demo_data::generate(2000, 4);
+        let text: Vec<String> = claims.iter().map(|c| c.to_training_json()).collect();
+        let mut cfg = Config::default();
+        cfg.training.trees.enabled = false;
+        cfg.training.alphas = vec![100.0];
+        let loaded = train::load(Cursor::new(text.join("\n")), BadLines::Refuse).unwrap();
+        let trained = train::train(loaded, &cfg, false).unwrap();
+        let dir = tempdir("model");
+        let p = dir.join("model.json");
+        std::fs::write(&p, trained.artifact.to_json()).unwrap();
+        p
+    })
+}
+
+fn rules_path() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("config/rules.toml")
+}
+
+fn settings() -> HttpSettings {
+    HttpSettings {
+        body_limit_bytes: 16 * 1024,
+        batch_limit_bytes: 1024 * 1024,
+        batch_line_bytes: 8 * 1024,
+        capacities: [
+            (Queue::Investigate, 1.5),
+            (Queue::DeskCheck, 6.0),
+            (Queue::Audit, 1.0),
+        ],
+    }
+}
+
+fn service(dir: &Path) -> Service {
+    let store = Store::open(&dir.join("store"), 16 * 1024 * 1024).unwrap();
+    store.start_flusher();
+    let model = Model::new(weir::model::ModelArtifact::read(model_path()).unwrap()).unwrap();
+    let rules = RuleSet::read(&rules_path()).unwrap();
+    Service::new(store, model, rules, Routing::default(), 3600)
+}
+
+fn claim(id: &str) -> Value {
+    json!({
+        "claim_id": id, "policy_id": "P-1", "claimant_id": "K-1", "line": "motor",
+        "loss_date": "2025-03-10", "loss_time": "23:15", "reported_at": "2025-03-12T08:00:00Z",
+        "policy_start": "2025-03-01", "claimed_amount": 9000.0, "sum_insured": 10000,
+        "currency": "EUR",
+        "parties": [{"role": "repairer", "id": "R-9"}, {"role": "payee_account", "id": "B-3"}],
+        "circumstances": {"police_report": false, "injury": false, "theft": true}
+    })
+}
+
+async fn call(
+    app: &axum::Router,
+    method: Method,
+    uri: &str,
+    ct: Option<&str>,
+    body: Vec<u8>,
+) -> (StatusCode, String, Value) {
+    let mut req = Request::builder().method(method).uri(uri);
+    if let Some(ct) = ct {
+        req = req.header("content-type", ct);
+    }
+    let resp = app
+        .clone()
+        .oneshot(req.body(Body::from(body)).unwrap())
+        .await
+        .unwrap();
+    let status = resp.status();
+    let ctype = resp
+        .headers()
+        .get("content-type")
+        .map(|v| v.to_str().unwrap().to_string())
+        .unwrap_or_default();
+    let bytes = resp.into_body().collect().await.unwrap().to_bytes();
+    let v = serde_json::from_slice(&bytes)
+        .unwrap_or(Value::String(String::from_utf8_lossy(&bytes).into()));
+    (status, ctype, v)
+}
+
+async fn post_claim(app: &axum::Router, v: &Value) -> (StatusCode, String, Value) {
+    call(
+        app,
+        Method::POST,
+        "/v1/claims",
+        Some("application/json"),
+        serde_json::to_vec(v).unwrap(),
+    )
+    .await
+}
+
+#[tokio::test]
+async fn claim_in_decision_out_then_idempotent_repost_and_revision() {
+    let dir = tempdir("intake");
+    let svc = service(&dir);
+    let app = http::app(svc.clone(), settings());
+
+    let (status, _, d) = post_claim(&app, &claim("C-1")).await;
+    assert_eq!(status, StatusCode::CREATED, "{d}");
+    for key in [
+        "claim_id",
+        "queue",
+        "priority",
+        "model_probability",
+        "outlier_score",
+        "reasons",
+        "model_version",
+        "rules_version",
+    ] {
+        assert!(d.get(key).is_some(), "decision lacks {key}: {d}");
+    }
+    assert_eq!(d["status"], "new");
+    assert_eq!(d["revision"], 1);
+    // A theft 9 days into the policy for 90% of the sum insured fires the new-policy rule.
+    let codes: Vec<&str> = d["reasons"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|r| r["code"].as_str().unwrap())
+        .collect();
+    assert!(codes.contains(&"rule.new-policy-large-loss"), "{codes:?}");
+
+    let new_before = svc
+        .metrics
+        .claims_received
+        .with_label_values(&["new"])
+        .get();
+    let (status, _, again) = post_claim(&app, &claim("C-1")).await;
+    assert_eq!(status, StatusCode::OK);
+    assert_eq!(again["status"], "duplicate");
+    assert_eq!(again["decided_at"], d["decided_at"]);
+    assert_eq!(
+        svc.metrics
+            .claims_received
+            .with_label_values(&["new"])
+            .get(),
+        new_before
+    );
+
+    // The same claim with a document-driven change: a new revision, the old one kept.
+    let mut changed = claim("C-1");
+    changed["claimed_amount"] = json!(9500.0);
+    let (status, _, rev) = post_claim(&app, &changed).await;
+    assert_eq!(status, StatusCode::CREATED);
+    assert_eq!(rev["status"], "revised");
+    assert_eq!(rev["revision"], 2);
+
+    let (status, _, view) = call(&app, Method::GET, "/v1/claims/C-1", None, vec![]).await;
+    assert_eq!(status, StatusCode::OK);
+    assert_eq!(view["revisions"].as_array().unwrap().len(), 2);
+    assert_eq!(view["claim"]["claimed_amount"], 9500.0);
+
+    // History counts the claim once, not once per revision: a second claim by the same
+    // claimant sees exactly one earlier claim.
+    let mut other = claim("C-2");
+    other["reported_at"] = json!("2025-03-20T08:00:00Z");
+    other["loss_date"] = json!("2025-03-19");
+    post_claim(&app, &other).await;
+    let (_, _, view2) = call(&app, Method::GET, "/v1/claims/C-2", None, vec![]).await;
+    assert_eq!(view2["features"]["claimant_claims_30d"], 1.0);
+    let linked: Vec<&str> = view2["linked_claims"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|l| l["claim_id"].as_str().unwrap())
+        .collect();
+    assert!(linked.contains(&"C-1"), "{view2}");
+}
+
+#[tokio::test]
+async fn bad_claims_get_problems_naming_the_field_and_leave_no_trace() {
+    let dir = tempdir("bad");
+    let svc = service(&dir);
+    let app = http::app(svc.clone(), settings());
+    post_claim(&app, &claim("C-ok")).await;
+    let before = svc.store.claim_count();
+    let depths: Vec<usize> = Queue::WORKED
+        .iter()
+        .map(|&q| svc.store.queue_depth(q))
+        .collect();
+
+    let mut bad = claim("C-bad");
+    bad["claimed_amount"] = json!(-1);
+    bad["parties"][1]["role"] = json!("cousin");
+    let (status, ct, p) = post_claim(&app, &bad).await;
+    assert_eq!(status, StatusCode::UNPROCESSABLE_ENTITY);
+    assert_eq!(ct, "application/problem+json");
+    let fields: Vec<&str> = p["errors"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| e["field"].as_str().unwrap())
+        .collect();
+    assert_eq!(fields, vec!["claimed_amount", "parties[1].role"]);
+
+    let (status, _, p) = call(
+        &app,
+        Method::POST,
+        "/v1/claims",
+        Some("application/json"),
+        b"{\"claim_id\": ".to_vec(),
+    )
+    .await;
+    assert_eq!(status, StatusCode::BAD_REQUEST);
+    assert_eq!(p["type"], "urn:weir:problem:invalid-json");
+    let (status, _, _) = call(
+        &app,
+        Method::POST,
+        "/v1/claims",
+        Some("text/plain"),
+        serde_json::to_vec(&claim("C-x")).unwrap(),
+    )
+    .await;
+    assert_eq!(status, StatusCode::UNSUPPORTED_MEDIA_TYPE);
+    let mut huge = claim("C-huge");
+    huge["region"] = json!("x".repeat(20_000));
+    let (status, _, _) = post_claim(&app, &huge).await;
+    assert_eq!(status, StatusCode::PAYLOAD_TOO_LARGE);
+
+    assert_eq!(
+        svc.store.claim_count(),
+        before,
+        "a refused claim was stored"
+    );
+    let after: Vec<usize> = Queue::WORKED
+        .iter()
+        .map(|&q| svc.store.queue_depth(q))
+        .collect();
+    assert_eq!(after, depths);
+    let (status, _, _) = call(&app, Method::GET, "/v1/claims/C-bad", None, vec![]).await;
+    assert_eq!(status, StatusCode::NOT_FOUND);
+    assert!(
+        svc.metrics
+            .claims_rejected
+            .with_label_values(&["invalid_claim"])
+            .get()
+            >= 1
+    );
+}
+
+#[tokio::test]
+async fn batch_intake_answers_every_line_in_order() {
+    let dir = tempdir("batch");
+    let svc = service(&dir);
+    let app = http::app(svc.clone(), settings());
+    let mut body = Vec::new();
+    for (i, id) in ["B-1", "B-2", "B-3"].iter().enumerate() {
+        let mut c = claim(id);
+        c["claimant_id"] = json!(format!("K-b{i}"));
+        body.extend(serde_json::to_vec(&c).unwrap());
+        body.push(b'\n');
+        if i == 1 {
+            body.extend(b"{\"claim_id\": \"B-broken\"}\n");
+        }
+    }
+    let resp = app
+        .clone()
+        .oneshot(
+            Request::post("/v1/claims/batch")
+                .header("content-type", "application/x-ndjson")
+                .body(Body::from(body))
+                .unwrap(),
+        )
+        .await
+        .unwrap();
+    assert_eq!(resp.status(), StatusCode::OK);
+    let bytes = resp.into_body().collect().await.unwrap().to_bytes();
+    let lines: Vec<Value> = bytes
+        .split(|&b| b == b'\n')
+        .filter(|l| !l.is_empty())
+        .map(|l| serde_json::from_slice(l).unwrap())
+        .collect();
+    assert_eq!(lines.len(), 4);
+    let nums: Vec<u64> = lines.iter().map(|l| l["line"].as_u64().unwrap()).collect();
+    assert_eq!(nums, vec![1, 2, 3, 4]);
+    assert_eq!(lines[2]["problem"]["status"], 422);
+    assert!(
+        lines[2]["problem"]["errors"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|e| e["field"] == "policy_id")
+    );
+    assert_eq!(lines[3]["claim_id"], "B-3");
+    assert_eq!(svc.store.claim_count(), 3);
+}
+
+#[tokio::test]
+async fn queues_list_lease_release() {
+    let dir = tempdir("queues");
+    let svc = service(&dir);
+    let app = http::app(svc.clone(), settings());
+    // Three claims sharing one payee account: the shared-account rule forces investigation.
+    for i in 0..5 {
+        let mut c = claim(&format!("Q-{i}"));
+        c["claimant_id"] = json!(format!("K-q{i}"));
+        c["policy_id"] = json!(format!("P-q{i}"));
+        c["reported_at"] = json!(format!("2025-04-0{}T08:00:00Z", i + 1));
+        c["loss_date"] = json!(format!("2025-04-0{}", i + 1));
+        c["claimed_amount"] = json!(1000.0 + f64::from(i) * 500.0);
+        post_claim(&app, &c).await;
+    }
+    let (status, _, qs) = call(&app, Method::GET, "/v1/queues", None, vec![]).await;
+    assert_eq!(status, StatusCode::OK);
+    let inv = qs["queues"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|q| q["queue"] == "investigate")
+        .unwrap();
+    assert!(inv["depth"].as_u64().unwrap() >= 2, "{qs}");
+
+    let (_, _, page) = call(
+        &app,
+        Method::GET,
+        "/v1/queues/investigate?limit=10",
+        None,
+        vec![],
+    )
+    .await;
+    let prios: Vec<f64> = page["items"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|i| i["priority"].as_f64().unwrap())
+        .collect();
+    assert!(
+        prios.windows(2).all(|w| w[0] >= w[1]),
+        "not ordered by priority: {prios:?}"
+    );
+
+    let lease = |who: &str| json!({"investigator": who}).to_string().into_bytes();
+    let (s1, _, a) = call(
+        &app,
+        Method::POST,
+        "/v1/queues/investigate/lease",
+        Some("application/json"),
+        lease("inv-a"),
+    )
+    .await;
+    let (s2, _, b) = call(
+        &app,
+        Method::POST,
+        "/v1/queues/investigate/lease",
+        Some("application/json"),
+        lease("inv-b"),
+    )
+    .await;
+    assert_eq!((s1, s2), (StatusCode::OK, StatusCode::OK));
+    assert_ne!(
+        a["claim_id"], b["claim_id"],
+        "two investigators got the same item"
+    );
+    assert_eq!(
+        a["claim_id"], page["items"][0]["claim_id"],
+        "lease takes the top item first"
+    );
+    assert_eq!(a["lease"]["holder"], "inv-a");
+
+    let uri = format!(
+        "/v1/queues/investigate/items/{}/release",
+        a["claim_id"].as_str().unwrap()
+    );
+    let (status, _, _) = call(&app, Method::POST, &uri, None, vec![]).await;
+    assert_eq!(status, StatusCode::OK);
+    let (_, _, again) = call(
+        &app,
+        Method::POST,
+        "/v1/queues/investigate/lease",
+        Some("application/json"),
+        lease("inv-c"),
+    )
+    .await;
+    assert_eq!(
+        again["claim_id"], a["claim_id"],
+        "a released item is leased again"
+    );
+
+    let (status, _, p) = call(&app, Method::GET, "/v1/queues/nonsense", None, vec![]).await;
+    assert_eq!(status, StatusCode::NOT_FOUND);
+    assert_eq!(p["status"], 404);
+    let (status, _, _) = call(
+        &app,
+        Method::POST,
+        "/v1/queues/investigate/lease",
+        Some("application/json"),
+        b"{}".to_vec(),
+    )
+    .await;
+    assert_eq!(status, StatusCode::BAD_REQUEST);
+}
+
+#[tokio::test]
+async fn operations_routes_and_openapi_match_the_router() {
+    let dir = tempdir("ops");
+    let svc = service(&dir);
+    let app = http::app(svc, settings());
+    post_claim(&app, &claim("M-1")).await;
+    let (status, _, body) = call(&app, Method::GET, "/metrics", None, vec![]).await;
+    assert_eq!(status, StatusCode::OK);
+    let text = body.as_str().unwrap();
+    for series in [
+        "weir_claims_received_total{status=\"new\"} 1",
+        "weir_claims_rejected_total{reason=\"invalid_claim\"} 0",
+        "weir_decisions_total",
+        "weir_scoring_seconds_bucket",
+        "weir_queue_depth{queue=\"investigate\"}",
+        "weir_store_flush_seconds_count",
+    ] {
+        assert!(text.contains(series), "metrics lack {series}:\n{text}");
+    }
+    let (status, _, r) = call(&app, Method::GET, "/readyz", None, vec![]).await;
+    assert_eq!(status, StatusCode::OK);
+    assert_eq!(r["status"], "ready");
+    let (status, _, p) = call(&app, Method::GET, "/no/such/route", None, vec![]).await;
+    assert_eq!(
+        (status, p["status"].as_u64()),
+        (StatusCode::NOT_FOUND, Some(404))
+    );
+    let (status, ct, _) = call(&app, Method::DELETE, "/v1/claims", None, vec![]).await;
+    assert_eq!(status, StatusCode::METHOD_NOT_ALLOWED);
+    assert_eq!(ct, "application/problem+json");
+
+    // Every operation in the OpenAPI document exists on the router (not a route-404 or 405).
+    let (_, _, doc) = call(&app, Method::GET, "/v1/openapi.json", None, vec![]).await;
+    let paths = doc["paths"].as_object().unwrap();
+    assert_eq!(paths.len(), 11, "document and router list 11 paths");
+    for (path, ops) in paths {
+        let uri = path
+            .replace("{claim_id}", "M-1")
+            .replace("{queue}", "audit");
+        for method in ops.as_object().unwrap().keys() {
+            let m = Method::from_bytes(method.to_uppercase().as_bytes()).unwrap();
+            let (status, _, p) = call(
+                &app,
+                m.clone(),
+                &uri,
+                Some("application/json"),
+                b"{}".to_vec(),
+            )
+            .await;
+            assert_ne!(status, StatusCode::METHOD_NOT_ALLOWED, "{m} {path}");
+            let route_missing = status == StatusCode::NOT_FOUND
+                && p["detail"].as_str().unwrap_or("").starts_with("route");
+            assert!(!route_missing, "{m} {path} is documented but not routed");
+        }
+    }
+}
+
+/// The real binary on port 0: serve, decide, stop with SIGTERM, start again on the same sled
+/// folder, and find the acknowledged claim with the same decision.
+#[test]
+fn real_server_keeps_acknowledged_claims_across_restart() {
+    let dir = tempdir("restart");
+    let config = dir.join("weir.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "[server]\nlisten = \"127.0.0.1:0\"\n[store]\npath = {:?}\n[paths]\nmodel = {:?}\nrules = {:?}\n",
+            dir.join("store"),
+            model_path(),
+            rules_path()
+        ),
+    )
+    .unwrap();
+    let rt = tokio::runtime::Runtime::new().unwrap();
+    let mut first: Option<Value> = None;
+    for round in 0..2 {
+        let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_weir"))
+            .args(["serve", "--config", config.to_str().unwrap()])
+            .stdout(std::process::Stdio::piped())
+            .stderr(std::process::Stdio::null())
+            .spawn()
+            .unwrap();
+        let mut line = String::new();
+        let mut out = std::io::BufReader::new(child.stdout.take().unwrap());
+        std::io::BufRead::read_line(&mut out, &mut line).unwrap();
+        let addr: std::net::SocketAddr = line
+            .trim()
+            .rsplit("http://")
+            .next()
+            .unwrap()
+            .parse()
+            .unwrap_or_else(|_| panic!("{line}"));
+        rt.block_on(async {
+            if round == 0 {
+                let r = weir::client::post_json(addr, "/v1/claims", &claim("R-1"))
+                    .await
+                    .unwrap();
+                assert_eq!(r.status, StatusCode::CREATED);
+                first = Some(r.json().unwrap());
+                let bad = weir::client::post_json(addr, "/v1/claims", &json!({"claim_id": "R-2"}))
+                    .await
+                    .unwrap();
+                assert_eq!(bad.status, StatusCode::UNPROCESSABLE_ENTITY);
+            } else {
+                let r = weir::client::get(addr, "/v1/claims/R-1").await.unwrap();
+                assert_eq!(r.status, StatusCode::OK);
+                let v = r.json().unwrap();
+                let f = first.as_ref().unwrap();
+                assert_eq!(v["decision"]["decided_at"], f["decided_at"]);
+                assert_eq!(v["decision"]["queue"], f["queue"]);
+                assert_eq!(v["decision"]["model_probability"], f["model_probability"]);
+                let r = weir::client::get(addr, "/v1/claims/R-2").await.unwrap();
+                assert_eq!(r.status, StatusCode::NOT_FOUND);
+            }
+        });
+        std::process::Command::new("kill")
+            .args(["-TERM", &child.id().to_string()])
+            .status()
+            .unwrap();
+        let status = child.wait().unwrap();
+        assert!(status.success(), "graceful shutdown exit: {status}");
+    }
+}

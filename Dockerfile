@@ -3,6 +3,7 @@ FROM rust:1.95-bookworm AS build
 WORKDIR /src
 COPY Cargo.toml Cargo.lock ./
 COPY src ./src
+COPY config ./config
 RUN cargo build --release --locked
 
 FROM debian:bookworm-slim
@@ -12,5 +13,14 @@ COPY config /etc/weir
 COPY demo-data /usr/share/weir/demo-data
 USER weir
 WORKDIR /var/lib/weir
+# Paths inside the container; every key can be overridden the same way (WEIR_SECTION_KEY).
+ENV WEIR_SERVER_LISTEN=0.0.0.0:8080 \
+    WEIR_STORE_PATH=/var/lib/weir/store \
+    WEIR_PATHS_MODEL=/var/lib/weir/model.json \
+    WEIR_PATHS_RULES=/etc/weir/rules.toml \
+    WEIR_SERVER_LOG_FORMAT=json
+EXPOSE 8080
+# Train a model first (weir train ... --out /var/lib/weir/model.json), e.g. on the demo data
+# shipped in /usr/share/weir/demo-data, then serve.
 ENTRYPOINT ["weir"]
-CMD ["train", "--data", "/usr/share/weir/demo-data/claims.ndjson", "--out", "/var/lib/weir/model.json", "--report", "/var/lib/weir/report.json", "--config", "/etc/weir/weir.toml"]
+CMD ["serve", "--config", "/etc/weir/weir.toml"]

@@ -119,6 +119,16 @@ fn n(v: f64) -> i64 {
     v.round() as i64
 }
 
+/// "1 other claim", "3 other claims".
+fn others(v: f64, noun: &str) -> String {
+    let k = n(v);
+    if k == 1 {
+        format!("1 other {noun}")
+    } else {
+        format!("{k} other {noun}s")
+    }
+}
+
 catalogue! {
     AmountRatio = "amount_to_sum_insured", "claimed amount divided by sum insured",
         |v| format!("claimed amount is {:.0}% of the sum insured", v * 100.0);
@@ -151,38 +161,60 @@ catalogue! {
     LateReport = "reported_after_30_days", "1 if the claim was reported more than 30 days after the loss",
         |_| "reported more than 30 days after the loss".to_string();
     ClaimantShort = "claimant_claims_30d", "earlier claims by this claimant in 30 days",
-        |v| format!("claimant made {} other claims in the last 30 days", n(v));
+        |v| format!("claimant made {} in the last 30 days", others(v, "claim"));
     ClaimantLong = "claimant_claims_365d", "earlier claims by this claimant in 365 days",
-        |v| format!("claimant made {} other claims in the last year", n(v));
+        |v| format!("claimant made {} in the last year", others(v, "claim"));
     ClaimantAmountLong = "claimant_log_amount_365d", "log of 1 + amount claimed by this claimant in 365 days",
         |v| format!("claimant claimed about {:.0} in the last year", v.exp() - 1.0);
     PolicyLong = "policy_claims_365d", "earlier claims on this policy in 365 days",
-        |v| format!("{} other claims on this policy in the last year", n(v));
+        |v| format!("{} on this policy in the last year", others(v, "claim"));
     RepairerShort = "repairer_claims_30d", "earlier claims naming this repairer in 30 days (highest over repairers)",
-        |v| format!("repairer named on {} other claims in the last 30 days", n(v));
+        |v| format!("repairer named on {} in the last 30 days", others(v, "claim"));
     RepairerClaimants = "repairer_claimants_365d", "distinct other claimants using this repairer in 365 days",
-        |v| format!("repairer shared with {} other claimants in the last year", n(v));
+        |v| format!("repairer shared with {} in the last year", others(v, "claimant"));
     MedicalShort = "medical_provider_claims_30d", "earlier claims naming this medical provider in 30 days",
-        |v| format!("medical provider named on {} other claims in the last 30 days", n(v));
+        |v| format!("medical provider named on {} in the last 30 days", others(v, "claim"));
     MedicalClaimants = "medical_provider_claimants_365d", "distinct other claimants of this medical provider in 365 days",
-        |v| format!("medical provider shared with {} other claimants in the last year", n(v));
+        |v| format!("medical provider shared with {} in the last year", others(v, "claimant"));
     AttorneyLong = "attorney_claims_365d", "earlier claims naming this attorney in 365 days",
-        |v| format!("attorney named on {} other claims in the last year", n(v));
+        |v| format!("attorney named on {} in the last year", others(v, "claim"));
     AttorneyClaimants = "attorney_claimants_365d", "distinct other claimants of this attorney in 365 days",
-        |v| format!("attorney shared with {} other claimants in the last year", n(v));
+        |v| format!("attorney shared with {} in the last year", others(v, "claimant"));
     PayeeLong = "payee_account_claims_365d", "earlier claims paying into this bank account in 365 days",
-        |v| format!("payee bank account used on {} other claims in the last year", n(v));
+        |v| format!("payee bank account used on {} in the last year", others(v, "claim"));
     PayeeClaimants = "payee_account_claimants_365d", "distinct other claimants paid into this bank account in 365 days",
-        |v| format!("payee bank account shared with {} other claimants in the last year", n(v));
+        |v| format!("payee bank account shared with {} in the last year", others(v, "claimant"));
     WitnessLong = "witness_claims_365d", "earlier claims naming this witness in 365 days",
-        |v| format!("witness appears on {} other claims in the last year", n(v));
+        |v| format!("witness appears on {} in the last year", others(v, "claim"));
     AddressLong = "address_claims_365d", "earlier claims at this address in 365 days",
-        |v| format!("{} other claims at this address in the last year", n(v));
+        |v| format!("{} at this address in the last year", others(v, "claim"));
     AddressClaimants = "address_claimants_365d", "distinct other claimants at this address in 365 days",
-        |v| format!("address shared with {} other claimants in the last year", n(v));
+        |v| format!("address shared with {} in the last year", others(v, "claimant"));
 }
 
 pub const N_FEATURES: usize = CATALOGUE.len();
+
+/// Which side of a feature's range an investigator reads as a warning sign. A model reason is
+/// only given when the claim's value lies on that side of the training average: a positive
+/// contribution from the *absence* of a signal ("0 other claimants") is arithmetic, not a
+/// reason anyone can check.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Warning {
+    /// Higher values are the warning sign (counts, amounts, flags).
+    High,
+    /// Lower values are the warning sign (days from policy start, number of parties).
+    Low,
+    /// Never a reason on its own (line of business).
+    Never,
+}
+
+pub fn warning_side(index: usize) -> Warning {
+    match CATALOGUE.get(index).map(|d| d.name) {
+        Some("days_policy_start_to_loss" | "party_count") => Warning::Low,
+        Some("line_home") | None => Warning::Never,
+        Some(_) => Warning::High,
+    }
+}
 
 /// The full feature vector of one claim, in catalogue order.
 pub type FeatureVector = [f64; N_FEATURES];

@@ -564,14 +564,22 @@ impl Model {
             probability: self.calibrated(margin),
             outlier_score,
             cluster,
-            reasons: self.reasons(&x, &contrib),
+            reasons: self.reasons(&x, &z, &contrib),
             features: x,
         }
     }
 
-    fn reasons(&self, x: &[f64], contrib: &[f64]) -> Vec<Reason> {
-        // Only features that move the log-odds noticeably (a factor of about 1.2 in the odds).
-        let mut order: Vec<usize> = (0..contrib.len()).filter(|&i| contrib[i] > 0.2).collect();
+    fn reasons(&self, x: &[f64], z: &[f64], contrib: &[f64]) -> Vec<Reason> {
+        // Only features that move the log-odds noticeably (a factor of about 1.2 in the odds)
+        // and whose value is on their warning side of the training average.
+        let mut order: Vec<usize> = (0..contrib.len())
+            .filter(|&i| contrib[i] > 0.2)
+            .filter(|&i| match features::warning_side(self.index[i]) {
+                features::Warning::High => z[i] > 0.0,
+                features::Warning::Low => z[i] < 0.0,
+                features::Warning::Never => false,
+            })
+            .collect();
         order.sort_by(|&a, &b| contrib[b].total_cmp(&contrib[a]));
         order
             .into_iter()

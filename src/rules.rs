@@ -9,11 +9,12 @@
 //!
 //! Combination, in order:
 //! 1. An `exempt` rule that fires sends the claim to no review, whatever else fired.
-//! 2. Otherwise the most serious `queue` a firing rule forces wins (investigate > desk check).
-//! 3. Otherwise the model decides: `investigate` when the probability reaches
+//! 2. The model proposes: `investigate` when the probability reaches
 //!    `routing.investigate_probability` and the expected value is positive; `desk_check` when the
 //!    probability reaches the model's own threshold or the outlier score reaches
 //!    `routing.outlier_desk_check`; else no review.
+//! 3. A `queue` forced by a firing rule is a floor, not a cap: the claim goes to the more
+//!    serious of the forced queue and the model's proposal (investigate > desk check).
 //! 4. A claim left with no review joins the audit sample with probability
 //!    `routing.audit_share`, drawn from a hash of its id (stable across replays, independent
 //!    of its features), so precision and recall can be estimated without selection bias.
@@ -433,16 +434,17 @@ pub fn route(rules: &RuleSet, routing: &Routing, x: &Inputs) -> Routed {
         }
     }
     let desk = routing.desk_check_probability.unwrap_or(x.model_threshold);
-    let queue = if exempt {
-        Queue::NoReview
-    } else if let Some(q) = forced {
-        q
-    } else if x.probability >= routing.investigate_probability && ev > 0.0 {
+    let proposed = if x.probability >= routing.investigate_probability && ev > 0.0 {
         Queue::Investigate
     } else if x.probability >= desk || x.outlier_score >= routing.outlier_desk_check {
         Queue::DeskCheck
     } else {
         Queue::NoReview
+    };
+    let queue = if exempt {
+        Queue::NoReview
+    } else {
+        forced.map_or(proposed, |f| f.max(proposed))
     };
     let queue =
         if queue == Queue::NoReview && !exempt && audit_draw(x.claim_id) < routing.audit_share {
@@ -521,6 +523,19 @@ exempt = true
         assert_eq!(r.queue, Queue::Investigate);
         let r = route(&rs, &Routing::default(), &inputs(&fv, 0.2, 5_000.0));
         assert_eq!(r.queue, Queue::DeskCheck);
+    }
+
+    #[test]
+    fn a_forced_queue_is_a_floor_not_a_cap() {
+        let text = RULES.replace("queue = \"investigate\"", "queue = \"desk_check\"");
+        let rs = RuleSet::from_toml(&text, "t").unwrap();
+        let mut fv = [0.0; features::N_FEATURES];
+        fv[features::index_of("loss_within_30_days_of_start").unwrap()] = 1.0;
+        fv[features::index_of("amount_to_sum_insured").unwrap()] = 0.9;
+        let low = route(&rs, &Routing::default(), &inputs(&fv, 0.01, 10_000.0));
+        assert_eq!(low.queue, Queue::DeskCheck);
+        let high = route(&rs, &Routing::default(), &inputs(&fv, 0.9, 10_000.0));
+        assert_eq!(high.queue, Queue::Investigate);
     }
 
     #[test]

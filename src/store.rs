@@ -451,6 +451,18 @@ impl Store {
         self.claims.len()
     }
 
+    /// Entries in every tree (claims, revisions, history, queue items, queue ranks): a cheap
+    /// way for tests and operators to see that nothing was half-written.
+    pub fn tree_sizes(&self) -> [usize; 5] {
+        [
+            self.claims.len(),
+            self.revisions.len(),
+            self.history.len(),
+            self.queue_items.len(),
+            self.queue_rank.len(),
+        ]
+    }
+
     /// Other claims naming any of this claim's parties, policy or address (not the claimant
     /// alone), reported within `window_secs` before or after it: the linked-claims view.
     /// Returns `(entity, claim id)` pairs, sorted.

@@ -117,6 +117,7 @@ pub fn init_logs(format: crate::config::LogFormat) {
     let filter = EnvFilter::try_from_default_env().unwrap_or_else(|_| EnvFilter::new("info"));
     let builder = tracing_subscriber::fmt()
         .with_env_filter(filter)
+        .with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr()))
         .with_writer(std::io::stderr);
     let _ = match format {
         crate::config::LogFormat::Json => builder.json().flatten_event(true).try_init(),

@@ -201,6 +201,33 @@ impl Default for Queues {
     }
 }
 
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct Monitor {
+    /// Drift compares claims decided in the last this many days with the training baseline.
+    pub drift_days: u32,
+    /// Segments of the fairness read-out: "line", "region", "policy_age".
+    pub segments: Vec<String>,
+    /// A segment value whose referral rate is below this share of the highest is flagged
+    /// (0.8: the four-fifths rule of 29 CFR 1607.4(D), an imported convention).
+    pub fairness_bound: f64,
+    /// How often the monitoring gauges in /metrics are recomputed.
+    pub refresh_seconds: u64,
+}
+
+impl Default for Monitor {
+    fn default() -> Self {
+        Monitor {
+            drift_days: 30,
+            segments: vec!["line".into(), "region".into(), "policy_age".into()],
+            fairness_bound: 0.8,
+            refresh_seconds: 300,
+        }
+    }
+}
+
+pub const SEGMENTS: [&str; 3] = ["line", "region", "policy_age"];
+
 #[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
 #[serde(default, deny_unknown_fields)]
 pub struct Config {
@@ -211,6 +238,7 @@ pub struct Config {
     pub paths: Paths,
     pub routing: crate::rules::Routing,
     pub queues: Queues,
+    pub monitor: Monitor,
 }
 
 /// Keys that are valid but absent from the serialised defaults (their default is "none").
@@ -361,6 +389,21 @@ impl Config {
             p.push(
                 "server.concurrency_limit and server.request_timeout_seconds: at least 1".into(),
             );
+        }
+        let m = &self.monitor;
+        if m.drift_days == 0 || m.refresh_seconds == 0 {
+            p.push("monitor.drift_days and monitor.refresh_seconds: at least 1".into());
+        }
+        if !(0.0..=1.0).contains(&m.fairness_bound) {
+            p.push("monitor.fairness_bound: must be between 0 and 1".into());
+        }
+        for seg in &m.segments {
+            if !SEGMENTS.contains(&seg.as_str()) {
+                p.push(format!(
+                    "monitor.segments: unknown segment {seg:?}; known: {}",
+                    SEGMENTS.join(", ")
+                ));
+            }
         }
         if self.queues.lease_minutes == 0 {
             p.push("queues.lease_minutes: at least 1".into());

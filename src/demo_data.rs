@@ -67,10 +67,7 @@ pub struct DemoClaim {
 impl DemoClaim {
     /// The training-file line: the claim in the intake schema plus its `outcome`.
     pub fn to_training_json(&self) -> String {
-        // The claim's own field order (claim_id first) reads better than a sorted map.
-        let claim = serde_json::to_string(&self.claim).unwrap_or_default();
-        let body = claim.strip_suffix('}').unwrap_or(&claim);
-        format!("{body},\"outcome\":\"{}\"}}", self.outcome.as_str())
+        crate::train::training_line(&self.claim, Some(self.outcome))
     }
 }
 

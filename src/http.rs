@@ -3,6 +3,7 @@
 //! hide internals (the cause is logged with the request id).
 
 use crate::claim::{Claim, ClaimError, FieldError};
+use crate::feedback::{OutcomeRecord, OutcomeReport};
 use crate::rules::Queue;
 use crate::service::{Decision, Service, ServiceError};
 use crate::store::IntakeStatus;
@@ -24,6 +25,10 @@ use std::sync::atomic::{AtomicU64, Ordering};
 #[derive(Debug, Clone)]
 pub struct HttpSettings {
     pub body_limit_bytes: usize,
+    /// Requests (a batch counts as one) served at once; beyond it, 503 with Retry-After.
+    pub concurrency_limit: usize,
+    /// Longest a single (non-batch) request may take before it is answered with 503.
+    pub request_timeout: std::time::Duration,
     pub batch_limit_bytes: usize,
     pub batch_line_bytes: usize,
     pub capacities: [(Queue, f64); 3],
@@ -53,6 +58,10 @@ pub enum AppError {
     MediaType { expected: &'static str },
     #[error("method not allowed on this route")]
     Method,
+    #[error("the service is at its concurrency limit; retry shortly")]
+    Overloaded,
+    #[error("the request took longer than the service allows; retry shortly")]
+    TimedOut,
     #[error("internal error")]
     Internal(String),
 }
@@ -105,6 +114,8 @@ impl AppError {
             AppError::TooLarge { .. } => (StatusCode::PAYLOAD_TOO_LARGE, "too-large"),
             AppError::MediaType { .. } => (StatusCode::UNSUPPORTED_MEDIA_TYPE, "media-type"),
             AppError::Method => (StatusCode::METHOD_NOT_ALLOWED, "method"),
+            AppError::Overloaded => (StatusCode::SERVICE_UNAVAILABLE, "overloaded"),
+            AppError::TimedOut => (StatusCode::SERVICE_UNAVAILABLE, "timed-out"),
             AppError::Internal(_) => (StatusCode::INTERNAL_SERVER_ERROR, "internal"),
         }
     }
@@ -113,6 +124,7 @@ impl AppError {
 impl IntoResponse for AppError {
     fn into_response(self) -> Response {
         let (status, kind) = self.status_and_kind();
+        let retry = matches!(self, AppError::Overloaded | AppError::TimedOut);
         let (detail, errors) = match self {
             AppError::NotJson(e) => (e.to_string(), e.field_errors()),
             AppError::InvalidClaim(errs) => (
@@ -129,7 +141,23 @@ impl IntoResponse for AppError {
             }
             other => (other.to_string(), vec![]),
         };
-        problem_response(status, kind, detail, errors)
+        let mut r = problem_response(status, kind, detail, errors);
+        if retry {
+            r.headers_mut()
+                .insert(header::RETRY_AFTER, HeaderValue::from_static("1"));
+        }
+        r
+    }
+}
+
+/// Load shedding and timeouts answer with problems too.
+async fn overload(err: tower::BoxError) -> AppError {
+    if err.is::<tower::timeout::error::Elapsed>() {
+        AppError::TimedOut
+    } else if err.is::<tower::load_shed::error::Overloaded>() {
+        AppError::Overloaded
+    } else {
+        AppError::Internal(err.to_string())
     }
 }
 
@@ -362,6 +390,9 @@ struct ClaimView {
     features: std::collections::BTreeMap<String, f64>,
     rules_fired: Vec<String>,
     linked_claims: Vec<Linked>,
+    /// The latest adjudicated outcome, if any, and every outcome revision.
+    outcome: Option<OutcomeRecord>,
+    outcome_history: Vec<OutcomeRecord>,
 }
 
 #[derive(Serialize)]
@@ -413,6 +444,12 @@ async fn get_claim(
             .into_iter()
             .map(|(via, claim_id)| Linked { via, claim_id })
             .collect(),
+        outcome: st.svc.store.outcome(&id).map_err(ServiceError::from)?,
+        outcome_history: st
+            .svc
+            .store
+            .outcome_history(&id)
+            .map_err(ServiceError::from)?,
     };
     Ok(Json(view).into_response())
 }
@@ -524,6 +561,109 @@ async fn release(
     }
 }
 
+async fn post_outcome(
+    State(st): State<AppState>,
+    Path(claim_id): Path<String>,
+    headers: HeaderMap,
+    body: Body,
+) -> Result<Response, AppError> {
+    check_id("claim_id", &claim_id)?;
+    require_type(&headers, "application/json")?;
+    let bytes = read_body(body, st.settings.body_limit_bytes).await?;
+    let v: serde_json::Value = serde_json::from_slice(&bytes).map_err(|e| {
+        AppError::NotJson(ClaimError::NotJson {
+            line: e.line(),
+            column: e.column(),
+            message: e.to_string(),
+        })
+    })?;
+    let report = OutcomeReport::from_value(&v).map_err(AppError::BadRequest)?;
+    match st
+        .svc
+        .record_outcome(&claim_id, report, chrono::Utc::now())
+        .await?
+    {
+        None => Err(AppError::NotFound {
+            what: "claim",
+            id: claim_id,
+        }),
+        Some((rec, created)) => {
+            let status = if created {
+                StatusCode::CREATED
+            } else {
+                StatusCode::OK
+            };
+            Ok((status, Json(rec)).into_response())
+        }
+    }
+}
+
+#[derive(Deserialize)]
+struct WindowQuery {
+    from: Option<String>,
+    to: Option<String>,
+}
+
+fn day_param(
+    field: &str,
+    v: Option<&String>,
+) -> Result<Option<chrono::DateTime<chrono::Utc>>, AppError> {
+    v.map(|s| {
+        chrono::NaiveDate::parse_from_str(s, "%Y-%m-%d")
+            .ok()
+            .and_then(|d| d.and_hms_opt(0, 0, 0))
+            .map(|t| t.and_utc())
+            .ok_or_else(|| {
+                AppError::BadRequest(vec![FieldError {
+                    field: field.into(),
+                    problem: "expected a date as YYYY-MM-DD".into(),
+                }])
+            })
+    })
+    .transpose()
+}
+
+async fn monitor_quality(
+    State(st): State<AppState>,
+    Query(q): Query<WindowQuery>,
+) -> Result<Response, AppError> {
+    let from = day_param("from", q.from.as_ref())?;
+    let to = day_param("to", q.to.as_ref())?;
+    Ok(Json(st.svc.quality(from, to)?).into_response())
+}
+
+async fn monitor_drift(State(st): State<AppState>) -> Result<Response, AppError> {
+    Ok(Json(st.svc.drift(chrono::Utc::now())?).into_response())
+}
+
+async fn monitor_fairness(State(st): State<AppState>) -> Result<Response, AppError> {
+    let rows = st.svc.fairness()?;
+    Ok(Json(json!({
+        "bound": st.svc.monitor.fairness_bound,
+        "convention": "a value is flagged when its referral rate is below the bound times the highest rate in its segment; 0.8 is the four-fifths rule of the US Uniform Guidelines on Employee Selection Procedures (29 CFR 1607.4(D)), imported as a convention, not a legal test for insurance",
+        "segments": rows,
+    }))
+    .into_response())
+}
+
+/// Every claim as a training-file line (latest revision, latest outcome or `unadjudicated`).
+async fn export_training(State(st): State<AppState>) -> Result<Response, AppError> {
+    let store = st.svc.store.clone();
+    let body = tokio::task::spawn_blocking(move || {
+        let mut buf = Vec::new();
+        store.export_training(&mut buf).map(|_| buf)
+    })
+    .await
+    .map_err(|e| AppError::Internal(e.to_string()))?
+    .map_err(ServiceError::from)?;
+    let mut r = Response::new(Body::from(body));
+    r.headers_mut().insert(
+        header::CONTENT_TYPE,
+        HeaderValue::from_static("application/x-ndjson"),
+    );
+    Ok(r)
+}
+
 async fn healthz() -> Json<serde_json::Value> {
     Json(json!({"status": "ok"}))
 }
@@ -624,22 +764,54 @@ async fn request_id(State(st): State<AppState>, mut req: Request, next: Next) ->
 
 /// The application: every route, its error mapping and its middleware.
 pub fn app(svc: Service, settings: HttpSettings) -> Router {
+    use axum::error_handling::HandleErrorLayer;
+    use tower::ServiceBuilder;
+    use tower::limit::GlobalConcurrencyLimitLayer;
+    let limit = GlobalConcurrencyLimitLayer::new(settings.concurrency_limit);
+    let timeout = settings.request_timeout;
     let state = AppState {
         svc,
         settings: Arc::new(settings),
     };
-    Router::new()
+    // Operations routes stay answerable under any load.
+    let ops = Router::new()
         .route("/healthz", get(healthz))
         .route("/readyz", get(readyz))
         .route("/metrics", get(metrics))
-        .route("/v1/openapi.json", get(openapi))
+        .route("/v1/openapi.json", get(openapi));
+    let api = Router::new()
         .route("/v1/claims", post(post_claim))
-        .route("/v1/claims/batch", post(post_batch))
         .route("/v1/claims/{claim_id}", get(get_claim))
+        .route("/v1/claims/{claim_id}/outcome", post(post_outcome))
         .route("/v1/queues", get(list_queues))
+        .route("/v1/monitor/quality", get(monitor_quality))
+        .route("/v1/monitor/drift", get(monitor_drift))
+        .route("/v1/monitor/fairness", get(monitor_fairness))
+        .route("/v1/export/training", get(export_training))
         .route("/v1/queues/{queue}", get(list_queue))
         .route("/v1/queues/{queue}/lease", post(lease))
         .route("/v1/queues/{queue}/items/{claim_id}/release", post(release))
+        .layer(
+            ServiceBuilder::new()
+                .layer(HandleErrorLayer::new(overload))
+                .load_shed()
+                .layer(limit.clone())
+                .timeout(timeout),
+        );
+    // A batch is long by design (bounded by its size limits), so it has no timeout, but it
+    // takes a place under the same concurrency limit.
+    let batch = Router::new()
+        .route("/v1/claims/batch", post(post_batch))
+        .layer(
+            ServiceBuilder::new()
+                .layer(HandleErrorLayer::new(overload))
+                .load_shed()
+                .layer(limit),
+        );
+    Router::new()
+        .merge(ops)
+        .merge(api)
+        .merge(batch)
         .fallback(not_found)
         .method_not_allowed_fallback(method_not_allowed)
         .layer(middleware::from_fn_with_state(state.clone(), request_id))

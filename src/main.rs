@@ -38,6 +38,15 @@ enum Command {
         #[arg(long, default_value = "127.0.0.1:0")]
         listen: String,
     },
+    /// Write every claim in the store with its latest outcome (or "unadjudicated") as a
+    /// training file for `weir train`. The service must be stopped (sled allows one process);
+    /// while it runs, use GET /v1/export/training instead.
+    Export {
+        #[arg(long)]
+        config: Option<PathBuf>,
+        #[arg(long)]
+        out: PathBuf,
+    },
     /// Serve the HTTP API on the embedded sled store.
     Serve {
         /// Configuration file (defaults and WEIR_* environment overrides apply).
@@ -127,6 +136,28 @@ fn run(cli: Cli) -> Result<()> {
             keep_serving,
             listen,
         })),
+        Command::Export { config, out } => {
+            let config = Config::load(config.as_deref())?;
+            let store = weir::store::Store::open(&config.store.path, config.store.cache_mb << 20)
+                .with_context(|| {
+                    format!(
+                        "cannot open the store {} (is weir serve running on it? use GET /v1/export/training then)",
+                        config.store.path.display()
+                    )
+                })?;
+            let mut w = BufWriter::new(
+                std::fs::File::create(&out)
+                    .with_context(|| format!("cannot create {}", out.display()))?,
+            );
+            let (n, adjudicated) = store.export_training(&mut w)?;
+            w.flush()?;
+            println!(
+                "wrote {n} claims ({adjudicated} with an outcome) to {}; train with: weir train --data {} --out MODEL",
+                out.display(),
+                out.display()
+            );
+            Ok(())
+        }
         Command::Serve { config } => {
             let config = Config::load(config.as_deref())?;
             weir::telemetry::init_logs(config.server.log_format);
@@ -280,7 +311,7 @@ fn print_summary(r: &train::Report, out: &std::path::Path) {
             t.claim_id,
             t.probability,
             t.outlier_score,
-            t.outcome.as_str(),
+            t.outcome.map_or(train::UNADJUDICATED, |o| o.as_str()),
             t.reasons.join("; ")
         );
     }

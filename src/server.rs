@@ -25,9 +25,12 @@ pub fn build(config: &Config) -> Result<(Service, HttpSettings)> {
         rules,
         config.routing.clone(),
         i64::try_from(config.queues.lease_minutes * 60).unwrap_or(i64::MAX),
-    );
+    )
+    .with_monitor(config.monitor.clone());
     let settings = HttpSettings {
         body_limit_bytes: config.server.body_limit_bytes,
+        concurrency_limit: config.server.concurrency_limit,
+        request_timeout: std::time::Duration::from_secs(config.server.request_timeout_seconds),
         batch_limit_bytes: config.server.batch_limit_bytes,
         batch_line_bytes: config.server.batch_line_bytes,
         capacities: [
@@ -48,6 +51,20 @@ pub async fn run(
 ) -> Result<()> {
     svc.store.start_flusher();
     let store = svc.store.clone();
+    // Monitoring gauges are recomputed in the background, never on the request path.
+    let refresher = svc.clone();
+    tokio::spawn(async move {
+        let every = std::time::Duration::from_secs(refresher.monitor.refresh_seconds);
+        loop {
+            let svc = refresher.clone();
+            let r = tokio::task::spawn_blocking(move || svc.refresh_monitoring(chrono::Utc::now()))
+                .await;
+            if let Ok(Err(e)) = r {
+                tracing::warn!(error = %e, "monitoring refresh failed");
+            }
+            tokio::time::sleep(every).await;
+        }
+    });
     let app = http::app(svc, settings);
     axum::serve(listener, app)
         .with_graceful_shutdown(shutdown)

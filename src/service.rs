@@ -9,6 +9,7 @@
 
 use crate::claim::Claim;
 use crate::features::{self, CATALOGUE};
+use crate::feedback::{OutcomeRecord, OutcomeReport};
 use crate::model::{Model, Reason};
 use crate::rules::{self, Queue, Routing, RuleSet};
 use crate::store::{DecisionRecord, IntakeStatus, QueueItem, Store, StoreError};
@@ -84,6 +85,7 @@ pub struct Service {
     pub routing: Arc<Routing>,
     pub lease_seconds: i64,
     pub metrics: Metrics,
+    pub monitor: Arc<crate::config::Monitor>,
     intake_lock: Arc<Mutex<()>>,
     queue_lock: Arc<Mutex<()>>,
 }
@@ -114,11 +116,17 @@ impl Service {
             routing: Arc::new(routing),
             lease_seconds,
             metrics,
+            monitor: Arc::new(crate::config::Monitor::default()),
             intake_lock: Arc::new(Mutex::new(())),
             queue_lock: Arc::new(Mutex::new(())),
         };
         svc.refresh_depths();
         svc
+    }
+
+    pub fn with_monitor(mut self, m: crate::config::Monitor) -> Service {
+        self.monitor = Arc::new(m);
+        self
     }
 
     pub fn model(&self) -> Arc<Model> {
@@ -244,7 +252,9 @@ impl Service {
                 .collect(),
             claim,
         };
-        let item = (rec.queue != Queue::NoReview).then(|| QueueItem {
+        // A claim already adjudicated is re-scored for the record but not queued again.
+        let adjudicated = self.store.outcome(&rec.claim_id)?.is_some();
+        let item = (rec.queue != Queue::NoReview && !adjudicated).then(|| QueueItem {
             claim_id: rec.claim_id.clone(),
             revision,
             queue: rec.queue,
@@ -295,6 +305,54 @@ impl Service {
         Ok(Decision::from_record(&rec, status))
     }
 
+    /// Record an adjudicated outcome. `Ok(None)` when the claim is unknown (nothing stored).
+    /// Posting the same outcome again changes nothing; a different one is a new revision.
+    pub async fn record_outcome(
+        &self,
+        claim_id: &str,
+        report: OutcomeReport,
+        now: DateTime<Utc>,
+    ) -> Result<Option<(OutcomeRecord, bool)>, ServiceError> {
+        let (rec, created) = {
+            let _guard = self
+                .intake_lock
+                .lock()
+                .map_err(|_| ServiceError::Poisoned)?;
+            let Some(head) = self.store.head(claim_id)? else {
+                return Ok(None);
+            };
+            let Some(decision) = self.store.decision(claim_id, head.revision)? else {
+                return Ok(None);
+            };
+            let current = self.store.outcome(claim_id)?;
+            if let Some(c) = current.as_ref().filter(|c| c.report == report) {
+                (c.clone(), false)
+            } else {
+                let rec = OutcomeRecord {
+                    claim_id: claim_id.to_string(),
+                    revision: current.as_ref().map_or(1, |c| c.revision + 1),
+                    claim_revision: head.revision,
+                    recorded_at: now.to_rfc3339(),
+                    report,
+                };
+                self.store.record_outcome(&rec, &decision)?;
+                self.metrics
+                    .outcomes
+                    .with_label_values(&[rec.report.outcome.as_str()])
+                    .inc();
+                if decision.queue != Queue::NoReview {
+                    self.metrics
+                        .queue_depth
+                        .with_label_values(&[decision.queue.as_str()])
+                        .set(self.store.queue_depth(decision.queue) as i64);
+                }
+                (rec, true)
+            }
+        };
+        self.store.flusher.durable().await;
+        Ok(Some((rec, created)))
+    }
+
     /// Lease the next item of a queue to an investigator (durable before returning).
     pub async fn lease(
         &self,
@@ -322,5 +380,178 @@ impl Service {
             self.store.flusher.durable().await;
         }
         Ok(found)
+    }
+}
+
+/// Band of policy age at the loss, for the fairness read-out.
+pub fn policy_age_band(claim: &Claim) -> &'static str {
+    match (claim.loss_date - claim.policy_start).num_days() {
+        d if d < 30 => "under 30 days",
+        d if d < 365 => "30 days to 1 year",
+        d if d < 3 * 365 => "1 to 3 years",
+        _ => "3 years or more",
+    }
+}
+
+/// Drift of one model feature or score against its training baseline.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct DriftRow {
+    pub name: String,
+    pub psi: f64,
+    pub ks: Option<f64>,
+    pub band: crate::monitor::drift::Band,
+    pub current_n: usize,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct DriftReport {
+    pub model_version: String,
+    pub window_days: u32,
+    pub claims_in_window: usize,
+    /// Reading bands: PSI below 0.1 stable, 0.1 to 0.25 watch, above 0.25 shifted (a rule of
+    /// thumb from credit-scoring practice, not a statistical test).
+    pub bands: String,
+    pub features: Vec<DriftRow>,
+    pub scores: Vec<DriftRow>,
+}
+
+impl Service {
+    /// Every decided claim with its outcome, as monitoring sees it.
+    pub fn observations(&self) -> Result<Vec<crate::monitor::quality::Observation>, ServiceError> {
+        let mut out = Vec::new();
+        let segs = &self.monitor.segments;
+        self.store.for_each_latest(|rec, outcome| {
+            let mut segments = std::collections::BTreeMap::new();
+            for s in segs {
+                let v = match s.as_str() {
+                    "line" => rec.claim.line.as_str().to_string(),
+                    "region" => rec.claim.region.clone().unwrap_or_else(|| "(none)".into()),
+                    "policy_age" => policy_age_band(&rec.claim).to_string(),
+                    _ => continue,
+                };
+                segments.insert(s.clone(), v);
+            }
+            out.push(crate::monitor::quality::Observation {
+                decided_at: DateTime::parse_from_rfc3339(&rec.decided_at)
+                    .map(|t| t.with_timezone(&Utc))
+                    .unwrap_or_default(),
+                queue: rec.queue,
+                model_version: rec.model_version.clone(),
+                rules_version: rec.rules_version.clone(),
+                outcome: outcome.map(|o| o.report.outcome),
+                segments,
+            });
+        })?;
+        Ok(out)
+    }
+
+    /// Drift of the champion's features and scores over claims decided in the last
+    /// `monitor.drift_days` before `now`.
+    pub fn drift(&self, now: DateTime<Utc>) -> Result<DriftReport, ServiceError> {
+        let model = self.model();
+        let a = &model.artifact;
+        let since = now - chrono::Duration::days(i64::from(self.monitor.drift_days));
+        let mut cols: Vec<Vec<f64>> = vec![Vec::new(); a.features.len()];
+        let (mut probs, mut outl) = (Vec::new(), Vec::new());
+        let mut n = 0;
+        self.store.for_each_latest(|rec, _| {
+            let t = DateTime::parse_from_rfc3339(&rec.decided_at)
+                .map(|t| t.with_timezone(&Utc))
+                .unwrap_or_default();
+            if t < since || t > now {
+                return;
+            }
+            n += 1;
+            for (i, name) in a.features.iter().enumerate() {
+                if let Some(v) = rec.features.get(name) {
+                    cols[i].push(*v);
+                }
+            }
+            if rec.model_version == a.version {
+                probs.push(rec.model_probability);
+                outl.push(rec.outlier_score);
+            }
+        })?;
+        let row = |name: &str, b: &crate::monitor::drift::Baseline, xs: &[f64]| {
+            let d = b.drift(xs);
+            DriftRow {
+                name: name.to_string(),
+                psi: d.psi,
+                ks: d.ks,
+                band: d.band,
+                current_n: xs.len(),
+            }
+        };
+        let features: Vec<DriftRow> = a
+            .features
+            .iter()
+            .zip(&a.baselines.features)
+            .zip(&cols)
+            .filter(|(_, xs)| !xs.is_empty())
+            .map(|((name, b), xs)| row(name, b, xs))
+            .collect();
+        let mut scores = Vec::new();
+        if !probs.is_empty() {
+            scores.push(row("probability", &a.baselines.probability, &probs));
+            scores.push(row("outlier_score", &a.baselines.outlier_score, &outl));
+        }
+        for r in features.iter().chain(&scores) {
+            self.metrics
+                .drift_psi
+                .with_label_values(&[r.name.as_str()])
+                .set(r.psi);
+        }
+        Ok(DriftReport {
+            model_version: a.version.clone(),
+            window_days: self.monitor.drift_days,
+            claims_in_window: n,
+            bands: "PSI below 0.1 stable, 0.1 to 0.25 watch, above 0.25 shifted (common practice, not a statistical test)".into(),
+            features,
+            scores,
+        })
+    }
+
+    /// Precision and audit estimates over `[from, to)`; updates the precision gauges when the
+    /// window is open-ended.
+    pub fn quality(
+        &self,
+        from: Option<DateTime<Utc>>,
+        to: Option<DateTime<Utc>>,
+    ) -> Result<crate::monitor::quality::QualityReport, ServiceError> {
+        let q = crate::monitor::quality::quality(&self.observations()?, from, to);
+        if from.is_none() && to.is_none() {
+            let g = &self.metrics.precision;
+            g.with_label_values(&["estimate"])
+                .set(q.precision.precision.unwrap_or(f64::NAN));
+            g.with_label_values(&["wilson_low"])
+                .set(q.precision.interval.map_or(f64::NAN, |i| i.0));
+            g.with_label_values(&["wilson_high"])
+                .set(q.precision.interval.map_or(f64::NAN, |i| i.1));
+            self.metrics
+                .awaiting_outcome
+                .set(q.share_awaiting_outcome.unwrap_or(f64::NAN));
+        }
+        Ok(q)
+    }
+
+    pub fn fairness(&self) -> Result<Vec<crate::monitor::quality::SegmentRow>, ServiceError> {
+        let rows =
+            crate::monitor::quality::fairness(&self.observations()?, self.monitor.fairness_bound);
+        // Only segments with fixed value sets become metric labels; regions are free text.
+        for r in rows.iter().filter(|r| r.segment != "region") {
+            self.metrics
+                .referral_rate_ratio
+                .with_label_values(&[r.segment.as_str(), r.value.as_str()])
+                .set(r.ratio_to_highest);
+        }
+        Ok(rows)
+    }
+
+    /// Recompute the monitoring gauges (called periodically by the server).
+    pub fn refresh_monitoring(&self, now: DateTime<Utc>) -> Result<(), ServiceError> {
+        self.drift(now)?;
+        self.quality(None, None)?;
+        self.fairness()?;
+        Ok(())
     }
 }

@@ -10,6 +10,8 @@
 //! | `history` | entity `\0` time (i64, order-preserving) claim hash (u64) | claimant hash, amount |
 //! | `queue_items` | queue `\0` claim id | [`QueueItem`] |
 //! | `queue_rank` | queue `\0` rank (priority, descending) claim id | empty |
+//! | `outcomes` | claim id | latest [`OutcomeRecord`] |
+//! | `outcome_revisions` | claim id `\0` revision (u32, big-endian) | every [`OutcomeRecord`] |
 //!
 //! Every intake writes all of these in one sled transaction, so a reader (or a restart) sees a
 //! claim with its history, decision and queue entry, or none of them. Durability: sled writes
@@ -20,6 +22,7 @@
 
 use crate::claim::Claim;
 use crate::features::{HistoryEvent, HistoryView, events_of};
+use crate::feedback::OutcomeRecord;
 use crate::model::Reason;
 use crate::rules::Queue;
 use serde::{Deserialize, Serialize};
@@ -245,6 +248,8 @@ pub struct Store {
     history: sled::Tree,
     queue_items: sled::Tree,
     queue_rank: sled::Tree,
+    outcomes: sled::Tree,
+    outcome_revisions: sled::Tree,
     pub flusher: Arc<Flusher>,
 }
 
@@ -274,6 +279,8 @@ impl Store {
             history: db.open_tree("history")?,
             queue_items: db.open_tree("queue_items")?,
             queue_rank: db.open_tree("queue_rank")?,
+            outcomes: db.open_tree("outcomes")?,
+            outcome_revisions: db.open_tree("outcome_revisions")?,
             db,
             flusher: Flusher::new(),
         })
@@ -451,16 +458,107 @@ impl Store {
         self.claims.len()
     }
 
-    /// Entries in every tree (claims, revisions, history, queue items, queue ranks): a cheap
-    /// way for tests and operators to see that nothing was half-written.
-    pub fn tree_sizes(&self) -> [usize; 5] {
+    /// Entries in every tree (claims, revisions, history, queue items, queue ranks, outcomes,
+    /// outcome revisions): a cheap way for tests and operators to see that nothing was
+    /// half-written.
+    pub fn tree_sizes(&self) -> [usize; 7] {
         [
             self.claims.len(),
             self.revisions.len(),
             self.history.len(),
             self.queue_items.len(),
             self.queue_rank.len(),
+            self.outcomes.len(),
+            self.outcome_revisions.len(),
         ]
+    }
+
+    pub fn outcome(&self, claim_id: &str) -> Result<Option<OutcomeRecord>, StoreError> {
+        self.outcomes
+            .get(claim_id.as_bytes())?
+            .map(|v| decode("outcome", &v))
+            .transpose()
+    }
+
+    /// Every outcome revision of a claim, oldest first.
+    pub fn outcome_history(&self, claim_id: &str) -> Result<Vec<OutcomeRecord>, StoreError> {
+        self.outcome_revisions
+            .scan_prefix(sep(&[claim_id.as_bytes(), &[]]))
+            .map(|kv| {
+                let (_, v) = kv?;
+                decode("outcome", &v)
+            })
+            .collect()
+    }
+
+    /// Store an outcome and take the claim out of its review queue, in one transaction.
+    pub fn record_outcome(
+        &self,
+        rec: &OutcomeRecord,
+        decision: &DecisionRecord,
+    ) -> Result<(), StoreError> {
+        let bytes = encode(rec);
+        (
+            &self.outcomes,
+            &self.outcome_revisions,
+            &self.queue_items,
+            &self.queue_rank,
+        )
+            .transaction(|(outcomes, revisions, items, rank)| {
+                outcomes.insert(rec.claim_id.as_bytes(), bytes.as_slice())?;
+                revisions.insert(revision_key(&rec.claim_id, rec.revision), bytes.as_slice())?;
+                items.remove(item_key(decision.queue, &decision.claim_id))?;
+                rank.remove(rank_key(
+                    decision.queue,
+                    decision.priority,
+                    &decision.claim_id,
+                ))?;
+                Ok::<(), ConflictableTransactionError<String>>(())
+            })?;
+        Ok(())
+    }
+
+    /// Write every claim (latest revision) as a training-file line with its latest outcome,
+    /// or `unadjudicated`: the input of the next `weir train`. Returns (claims, with outcome).
+    pub fn export_training(
+        &self,
+        w: &mut dyn std::io::Write,
+    ) -> Result<(usize, usize), StoreError> {
+        let (mut n, mut with_outcome) = (0, 0);
+        let mut io_err = None;
+        self.for_each_latest(|rec, outcome| {
+            if io_err.is_some() {
+                return;
+            }
+            let line = crate::train::training_line(&rec.claim, outcome.map(|o| o.report.outcome));
+            if let Err(e) = writeln!(w, "{line}") {
+                io_err = Some(e);
+            }
+            n += 1;
+            with_outcome += usize::from(outcome.is_some());
+        })?;
+        match io_err {
+            Some(e) => Err(StoreError::Flush(format!("export write failed: {e}"))),
+            None => Ok((n, with_outcome)),
+        }
+    }
+
+    /// Every claim's latest decision with its latest outcome, in claim id order.
+    pub fn for_each_latest(
+        &self,
+        mut f: impl FnMut(&DecisionRecord, Option<&OutcomeRecord>),
+    ) -> Result<(), StoreError> {
+        for kv in self.claims.iter() {
+            let (k, v) = kv?;
+            let head: ClaimHead = decode("claim head", &v)?;
+            let id = String::from_utf8_lossy(&k).into_owned();
+            let Some(rec) = self.decision(&id, head.revision)? else {
+                continue;
+            };
+            let outcome = self.outcome(&id)?;
+            f(&rec, outcome.as_ref());
+        }
+        Ok(())
     }
 
     /// Other claims naming any of this claim's parties, policy or address (not the claimant

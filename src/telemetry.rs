@@ -3,7 +3,8 @@
 
 use crate::rules::Queue;
 use prometheus::{
-    Encoder, Histogram, HistogramOpts, IntCounterVec, IntGaugeVec, Opts, Registry, TextEncoder,
+    Encoder, Gauge, GaugeVec, Histogram, HistogramOpts, IntCounterVec, IntGaugeVec, Opts, Registry,
+    TextEncoder,
 };
 
 /// Why a claim was refused at intake (the `reason` label).
@@ -24,6 +25,15 @@ pub struct Metrics {
     pub scoring_seconds: Histogram,
     pub queue_depth: IntGaugeVec,
     pub http_requests: IntCounterVec,
+    /// Outcomes recorded (first outcomes and revisions), by outcome.
+    pub outcomes: IntCounterVec,
+    /// PSI of each model feature and score against the training baseline.
+    pub drift_psi: GaugeVec,
+    /// Precision of referrals: estimate and 95% Wilson bounds.
+    pub precision: GaugeVec,
+    pub awaiting_outcome: Gauge,
+    /// Referral rate of a segment value divided by the highest in its segment.
+    pub referral_rate_ratio: GaugeVec,
 }
 
 fn must<T>(r: prometheus::Result<T>) -> T {
@@ -69,8 +79,48 @@ impl Metrics {
             Opts::new("weir_http_requests_total", "HTTP responses by status class"),
             &["class"],
         ));
+        let outcomes = must(IntCounterVec::new(
+            Opts::new(
+                "weir_outcomes_total",
+                "Adjudicated outcomes recorded, by outcome",
+            ),
+            &["outcome"],
+        ));
+        let drift_psi = must(GaugeVec::new(
+            Opts::new(
+                "weir_drift_psi",
+                "Population stability index of a model feature or score against the training baseline (recent window)",
+            ),
+            &["name"],
+        ));
+        let precision = must(GaugeVec::new(
+            Opts::new(
+                "weir_referral_precision_ratio",
+                "Share of adjudicated referrals that were referral-worthy, with 95% Wilson bounds",
+            ),
+            &["bound"],
+        ));
+        let awaiting_outcome = must(Gauge::new(
+            "weir_referrals_awaiting_outcome_ratio",
+            "Share of referrals with no outcome yet",
+        ));
+        let referral_rate_ratio = must(GaugeVec::new(
+            Opts::new(
+                "weir_referral_rate_ratio",
+                "Referral rate of a segment value divided by the highest rate in its segment",
+            ),
+            &["segment", "value"],
+        ));
+        for o in crate::feedback::Outcome::ALL {
+            outcomes.with_label_values(&[o.as_str()]);
+        }
         for c in [
-            Box::new(claims_received.clone()) as Box<dyn prometheus::core::Collector>,
+            Box::new(outcomes.clone()) as Box<dyn prometheus::core::Collector>,
+            Box::new(drift_psi.clone()),
+            Box::new(precision.clone()),
+            Box::new(awaiting_outcome.clone()),
+            Box::new(referral_rate_ratio.clone()),
+            Box::new(claims_received.clone()),
             Box::new(claims_rejected.clone()),
             Box::new(decisions.clone()),
             Box::new(scoring_seconds.clone()),
@@ -101,6 +151,11 @@ impl Metrics {
             scoring_seconds,
             queue_depth,
             http_requests,
+            outcomes,
+            drift_psi,
+            precision,
+            awaiting_outcome,
+            referral_rate_ratio,
         }
     }
 

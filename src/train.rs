@@ -70,7 +70,8 @@ pub enum TrainError {
 pub struct TrainingRow {
     pub line: usize,
     pub claim: Claim,
-    pub outcome: Outcome,
+    /// `None` for a claim without an outcome yet.
+    pub outcome: Option<Outcome>,
 }
 
 #[derive(Debug, Default)]
@@ -80,14 +81,21 @@ pub struct Loaded {
     pub skipped: Vec<LineProblem>,
 }
 
-fn parse_line(text: &str) -> Result<(Claim, Outcome), String> {
+/// The `outcome` value of a claim that has none yet (as `weir export` writes it): the claim
+/// counts in history features but is not fitted on.
+pub const UNADJUDICATED: &str = "unadjudicated";
+
+fn parse_line(text: &str) -> Result<(Claim, Option<Outcome>), String> {
     let v: serde_json::Value = serde_json::from_str(text).map_err(|e| format!("not JSON: {e}"))?;
     let outcome = match v.get("outcome") {
-        None | Some(serde_json::Value::Null) => Err("outcome: required".to_string()),
-        Some(serde_json::Value::String(s)) => Outcome::parse(s).ok_or_else(|| {
+        None | Some(serde_json::Value::Null) => Err(format!(
+            "outcome: required (use \"{UNADJUDICATED}\" for a claim without one)"
+        )),
+        Some(serde_json::Value::String(s)) if s == UNADJUDICATED => Ok(None),
+        Some(serde_json::Value::String(s)) => Outcome::parse(s).map(Some).ok_or_else(|| {
             let names: Vec<_> = Outcome::ALL.iter().map(|o| o.as_str()).collect();
             format!(
-                "outcome: unknown outcome {s:?}; expected one of {}",
+                "outcome: unknown outcome {s:?}; expected one of {}, or {UNADJUDICATED}",
                 names.join(", ")
             )
         }),
@@ -104,6 +112,17 @@ fn parse_line(text: &str) -> Result<(Claim, Outcome), String> {
         (Err(a), Err(b)) => Err(format!("{b}; {a}")),
         (Err(a), Ok(_)) | (Ok(_), Err(a)) => Err(a),
     }
+}
+
+/// One line of a training file: the claim in the intake schema (its own field order, claim id
+/// first) followed by its `outcome`.
+pub fn training_line(claim: &Claim, outcome: Option<Outcome>) -> String {
+    let text = serde_json::to_string(claim).unwrap_or_default();
+    let body = text.strip_suffix('}').unwrap_or(&text);
+    format!(
+        "{body},\"outcome\":\"{}\"}}",
+        outcome.map_or(UNADJUDICATED, Outcome::as_str)
+    )
 }
 
 /// Read a training file. Blank lines are ignored; a claim id seen twice is a bad line (the
@@ -366,7 +385,7 @@ pub struct TopReferral {
     pub claim_id: String,
     pub probability: f64,
     pub outlier_score: f64,
-    pub outcome: Outcome,
+    pub outcome: Option<Outcome>,
     pub reasons: Vec<String>,
 }
 
@@ -485,11 +504,11 @@ pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trai
     let mut unlabelled = std::collections::BTreeMap::new();
     let mut labelled: Vec<usize> = Vec::new();
     for (i, r) in rows.iter().enumerate() {
-        match r.outcome.label() {
+        match r.outcome.and_then(Outcome::label) {
             Some(_) => labelled.push(i),
             None => {
                 *unlabelled
-                    .entry(r.outcome.as_str().to_string())
+                    .entry(r.outcome.map_or(UNADJUDICATED, Outcome::as_str).to_string())
                     .or_insert(0) += 1
             }
         }
@@ -510,7 +529,7 @@ pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trai
         }
         m
     };
-    let label = |i: &usize| rows[*i].outcome.label() == Some(true);
+    let label = |i: &usize| rows[*i].outcome.and_then(Outcome::label) == Some(true);
     let (tr, te) = labelled.split_at(cut);
     let train_rows: Vec<&TrainingRow> = tr.iter().map(|&i| &rows[i]).collect();
     let test_rows: Vec<&TrainingRow> = te.iter().map(|&i| &rows[i]).collect();

@@ -124,6 +124,7 @@ fn bad_training_lines_are_named_and_skipped_or_refused() {
     assert_eq!(problems.len(), 4, "{problems:?}");
     assert_eq!(problems[0].0, 3);
     assert!(problems[1].1.contains("outcome: required"), "{problems:?}");
+    assert!(problems[1].1.contains("unadjudicated"), "{problems:?}");
     assert_eq!(problems[1].0, 6);
     assert!(
         problems[2].1.contains("line: unknown line of business"),

@@ -269,3 +269,26 @@ fn drift_matches_scipy_and_numpy() {
         "categorical psi",
     );
 }
+
+/// Source: SciPy `binomtest(k, n).proportion_ci(confidence_level=0.95, method="wilson")`.
+#[test]
+fn wilson_interval_matches_scipy() {
+    use weir::monitor::quality::{Z95, wilson};
+    let f = fixture("wilson.json");
+    for c in f["cases"].as_array().unwrap() {
+        let (k, n) = (c["k"].as_u64().unwrap(), c["n"].as_u64().unwrap());
+        let (lo, hi) = wilson(k, n, Z95).unwrap();
+        close(
+            lo,
+            c["low"].as_f64().unwrap(),
+            1e-12,
+            &format!("wilson low {k}/{n}"),
+        );
+        close(
+            hi,
+            c["high"].as_f64().unwrap(),
+            1e-12,
+            &format!("wilson high {k}/{n}"),
+        );
+    }
+}

@@ -55,6 +55,8 @@ fn rules_path() -> PathBuf {
 fn settings() -> HttpSettings {
     HttpSettings {
         body_limit_bytes: 16 * 1024,
+        concurrency_limit: 64,
+        request_timeout: std::time::Duration::from_secs(10),
         batch_limit_bytes: 1024 * 1024,
         batch_line_bytes: 8 * 1024,
         capacities: [
@@ -410,6 +412,57 @@ async fn queues_list_lease_release() {
         "a released item is leased again"
     );
 
+    // An outcome takes the item out of its queue; the same outcome again changes nothing; an
+    // outcome for an unknown claim is a 404 and stores nothing.
+    let depth = svc.store.queue_depth(Queue::Investigate);
+    let out = json!({"outcome": "fraud_confirmed", "amount_saved": 2500, "adjudicated_on": "2025-05-20", "decided_by": "inv-a"});
+    let uri = format!("/v1/claims/{}/outcome", a["claim_id"].as_str().unwrap());
+    let (status, _, rec) = call(
+        &app,
+        Method::POST,
+        &uri,
+        Some("application/json"),
+        out.to_string().into_bytes(),
+    )
+    .await;
+    assert_eq!(status, StatusCode::CREATED, "{rec}");
+    assert_eq!(rec["revision"], 1);
+    assert_eq!(svc.store.queue_depth(Queue::Investigate), depth - 1);
+    let (status, _, _) = call(
+        &app,
+        Method::POST,
+        &uri,
+        Some("application/json"),
+        out.to_string().into_bytes(),
+    )
+    .await;
+    assert_eq!(status, StatusCode::OK);
+    let sizes = svc.store.tree_sizes();
+    let (status, _, _) = call(
+        &app,
+        Method::POST,
+        "/v1/claims/NO-SUCH/outcome",
+        Some("application/json"),
+        out.to_string().into_bytes(),
+    )
+    .await;
+    assert_eq!(status, StatusCode::NOT_FOUND);
+    let (status, _, p) = call(
+        &app,
+        Method::POST,
+        &uri,
+        Some("application/json"),
+        br#"{"outcome": "guilty"}"#.to_vec(),
+    )
+    .await;
+    assert_eq!(status, StatusCode::BAD_REQUEST);
+    assert_eq!(p["errors"][0]["field"], "outcome");
+    assert_eq!(
+        svc.store.tree_sizes(),
+        sizes,
+        "a refused outcome left a trace"
+    );
+
     let (status, _, p) = call(&app, Method::GET, "/v1/queues/nonsense", None, vec![]).await;
     assert_eq!(status, StatusCode::NOT_FOUND);
     assert_eq!(p["status"], 404);
@@ -458,7 +511,7 @@ async fn operations_routes_and_openapi_match_the_router() {
     // Every operation in the OpenAPI document exists on the router (not a route-404 or 405).
     let (_, _, doc) = call(&app, Method::GET, "/v1/openapi.json", None, vec![]).await;
     let paths = doc["paths"].as_object().unwrap();
-    assert_eq!(paths.len(), 11, "document and router list 11 paths");
+    assert_eq!(paths.len(), 16, "document and router list 16 paths");
     for (path, ops) in paths {
         let uri = path
             .replace("{claim_id}", "M-1")
@@ -546,4 +599,174 @@ fn real_server_keeps_acknowledged_claims_across_restart() {
         let status = child.wait().unwrap();
         assert!(status.success(), "graceful shutdown exit: {status}");
     }
+}
+
+fn report_for(o: weir::feedback::Outcome, on: chrono::NaiveDate) -> weir::feedback::OutcomeReport {
+    weir::feedback::OutcomeReport {
+        outcome: o,
+        amount_saved: 0.0,
+        amount_recovered: 0.0,
+        adjudicated_on: on,
+        decided_by: "panel-1".into(),
+    }
+}
+
+/// Over an invented demo stream decided on its own clock, with the ground-truth outcomes posted
+/// back for every claim sent to review: the confusion counts per week and queue equal a count
+/// made here, independently, from the same data.
+#[tokio::test]
+async fn confusion_counts_by_week_match_an_independent_count() {
+    use chrono::Datelike;
+    use std::collections::BTreeMap;
+    let dir = tempdir("quality");
+    let svc = service(&dir);
+    let stream = weir::demo_data::generate(1500, 9);
+    let mut expected: BTreeMap<(String, String), [u64; 4]> = BTreeMap::new();
+    for d in &stream {
+        let (rec, _) = svc.decide(d.claim.clone(), d.claim.reported_at).unwrap();
+        if rec.queue == Queue::NoReview {
+            continue;
+        }
+        let on = d.claim.reported_at.date_naive() + chrono::Days::new(30);
+        svc.record_outcome(
+            &rec.claim_id,
+            report_for(d.outcome, on),
+            d.claim.reported_at,
+        )
+        .await
+        .unwrap()
+        .unwrap();
+        if let Some(y) = d.outcome.label() {
+            let w = d.claim.reported_at.iso_week();
+            let key = (
+                format!("{}-W{:02}", w.year(), w.week()),
+                rec.queue.as_str().to_string(),
+            );
+            let referred = matches!(rec.queue, Queue::Investigate | Queue::DeskCheck);
+            let cell = expected.entry(key).or_default();
+            cell[match (referred, y) {
+                (true, true) => 0,
+                (true, false) => 1,
+                (false, false) => 2,
+                (false, true) => 3,
+            }] += 1;
+        }
+    }
+    let q = svc.quality(None, None).unwrap();
+    let got: BTreeMap<(String, String), [u64; 4]> = q
+        .groups
+        .iter()
+        .filter(|g| g.labelled > 0)
+        .map(|g| {
+            let c = g.confusion;
+            (
+                (g.week.clone(), g.queue.as_str().to_string()),
+                [c.tp, c.fp, c.tn, c.fn_],
+            )
+        })
+        .collect();
+    assert!(
+        expected.len() > 10,
+        "too few weeks to mean anything: {}",
+        expected.len()
+    );
+    assert_eq!(got, expected);
+    let (tp, fp): (u64, u64) = expected
+        .values()
+        .fold((0, 0), |a, c| (a.0 + c[0], a.1 + c[1]));
+    assert_eq!(q.precision.precision, Some(tp as f64 / (tp + fp) as f64));
+    assert_eq!(q.referred_awaiting_outcome, 0);
+    // A second, different outcome for a claim is a revision, not a second count.
+    let first = q.groups.iter().find(|g| g.labelled > 0).unwrap().clone();
+    let any = stream
+        .iter()
+        .find(|d| {
+            iso(d.claim.reported_at) == first.week
+                && d.outcome.label().is_some()
+                && svc.store.outcome(&d.claim.claim_id).unwrap().is_some()
+        })
+        .unwrap();
+    let on = any.claim.reported_at.date_naive() + chrono::Days::new(40);
+    let (rec, created) = svc
+        .record_outcome(
+            &any.claim.claim_id,
+            report_for(weir::feedback::Outcome::Withdrawn, on),
+            any.claim.reported_at,
+        )
+        .await
+        .unwrap()
+        .unwrap();
+    assert!(created);
+    assert_eq!(rec.revision, 2);
+    let q2 = svc.quality(None, None).unwrap();
+    let decided: u64 = q2.groups.iter().map(|g| g.decided).sum();
+    assert_eq!(decided, stream.len() as u64);
+    assert_eq!(
+        q2.totals.total() + 1,
+        q.totals.total(),
+        "the withdrawn claim leaves the labelled counts"
+    );
+
+    // The export is a training file: every claim once, outcomes where posted, and it trains.
+    let mut buf = Vec::new();
+    let (n, with_outcome) = svc.store.export_training(&mut buf).unwrap();
+    assert_eq!(n, stream.len());
+    let loaded = train::load(Cursor::new(buf), BadLines::Refuse).unwrap();
+    assert_eq!(loaded.rows.len(), stream.len());
+    assert_eq!(
+        loaded.rows.iter().filter(|r| r.outcome.is_some()).count(),
+        with_outcome
+    );
+    let changed = loaded
+        .rows
+        .iter()
+        .find(|r| r.claim.claim_id == any.claim.claim_id)
+        .unwrap();
+    assert_eq!(changed.outcome, Some(weir::feedback::Outcome::Withdrawn));
+}
+
+fn iso(t: chrono::DateTime<chrono::Utc>) -> String {
+    weir::monitor::quality::iso_week(t)
+}
+
+/// Claims like the training data drift little; claims whose police-report flag is shifted
+/// move that one feature past the "shifted" band and leave the others stable.
+#[tokio::test]
+async fn drift_flags_the_shifted_feature_only() {
+    let at = chrono::DateTime::parse_from_rfc3339("2026-01-15T12:00:00Z")
+        .unwrap()
+        .with_timezone(&chrono::Utc);
+    let mut reports = Vec::new();
+    for shift in [false, true] {
+        let dir = tempdir("drift");
+        let svc = service(&dir);
+        for d in weir::demo_data::generate(2000, 21) {
+            let mut c = d.claim;
+            if shift {
+                c.circumstances.police_report = false;
+            }
+            svc.decide(c, at).unwrap();
+        }
+        reports.push(svc.drift(at).unwrap());
+    }
+    let psi = |r: &weir::service::DriftReport, name: &str| {
+        r.features.iter().find(|f| f.name == name).unwrap().psi
+    };
+    for f in &reports[0].features {
+        assert!(f.psi < 0.1, "unshifted {} has PSI {}", f.name, f.psi);
+    }
+    assert!(psi(&reports[1], "no_police_report") > 0.25);
+    for f in reports[1]
+        .features
+        .iter()
+        .filter(|f| f.name != "no_police_report")
+    {
+        assert!(
+            f.psi < 0.1,
+            "{} drifted ({}) though only the police report was shifted",
+            f.name,
+            f.psi
+        );
+    }
+    assert_eq!(reports[0].claims_in_window, 2000);
 }

@@ -1,4 +1,6 @@
-//! Monitoring read-outs, all pure: drift of features and scores against the training baseline.
-//! (Confusion counts by window and precision intervals join here with the outcomes loop.)
+//! Monitoring read-outs, all pure: drift of features and scores against the training baseline
+//! ([`drift`]); confusion counts by week, precision with its interval, audit-sample estimates
+//! and referral rates by segment ([`quality`]).
 
 pub mod drift;
+pub mod quality;

@@ -179,6 +179,16 @@ def main():
                    "(benign vs malignant) and load_iris() rounded petal length (versicolor vs virginica)"),
     })
 
+    # 7. Wilson score intervals (SciPy binomtest(...).proportion_ci(method="wilson")).
+    cases = []
+    for k, n in [(0, 10), (1, 10), (5, 10), (10, 10), (3, 47), (81, 200), (1, 1000), (999, 1000)]:
+        ci = scipy.stats.binomtest(k, n).proportion_ci(confidence_level=0.95, method="wilson")
+        cases.append({"k": k, "n": n, "low": float(ci.low), "high": float(ci.high)})
+    dump("wilson.json", {
+        "cases": cases,
+        "source": "scipy.stats.binomtest(k, n).proportion_ci(confidence_level=0.95, method='wilson')",
+    })
+
 
 if __name__ == "__main__":
     main()

@@ -664,6 +664,70 @@ async fn export_training(State(st): State<AppState>) -> Result<Response, AppErro
     Ok(r)
 }
 
+#[derive(Deserialize)]
+struct RoleQuery {
+    role: Option<String>,
+}
+
+/// Largest model artifact accepted by the admin upload.
+const MODEL_LIMIT_BYTES: usize = 64 * 1024 * 1024;
+
+/// Load a model artifact (the request body) as champion or challenger, without a restart.
+async fn admin_model(
+    State(st): State<AppState>,
+    Query(q): Query<RoleQuery>,
+    headers: HeaderMap,
+    body: Body,
+) -> Result<Response, AppError> {
+    let role = match q.role.as_deref() {
+        Some("champion") => crate::service::ModelRole::Champion,
+        Some("challenger") | None => crate::service::ModelRole::Challenger,
+        Some(_) => {
+            return Err(AppError::BadRequest(vec![FieldError {
+                field: "role".into(),
+                problem: "expected champion or challenger".into(),
+            }]));
+        }
+    };
+    require_type(&headers, "application/json")?;
+    let bytes = read_body(body, MODEL_LIMIT_BYTES).await?;
+    let text = std::str::from_utf8(&bytes).map_err(|_| {
+        AppError::BadRequest(vec![FieldError {
+            field: String::new(),
+            problem: "the model artifact is not UTF-8".into(),
+        }])
+    })?;
+    let model = crate::model::ModelArtifact::from_json(text)
+        .and_then(crate::model::Model::new)
+        .map_err(|e| {
+            AppError::BadRequest(vec![FieldError {
+                field: String::new(),
+                problem: e.to_string(),
+            }])
+        })?;
+    let version = model.version().to_string();
+    st.svc.load_model(model, role, chrono::Utc::now());
+    tracing::info!(%version, ?role, "model loaded");
+    Ok(Json(json!({"loaded": version, "role": role})).into_response())
+}
+
+async fn admin_promote(State(st): State<AppState>) -> Result<Response, AppError> {
+    if st.svc.promote() {
+        let v = st.svc.model().version().to_string();
+        tracing::info!(version = %v, "challenger promoted to champion");
+        Ok(Json(json!({"champion": v})).into_response())
+    } else {
+        Err(AppError::NotFound {
+            what: "challenger",
+            id: String::new(),
+        })
+    }
+}
+
+async fn monitor_compare(State(st): State<AppState>) -> Result<Response, AppError> {
+    Ok(Json(st.svc.compare()?).into_response())
+}
+
 async fn healthz() -> Json<serde_json::Value> {
     Json(json!({"status": "ok"}))
 }
@@ -673,6 +737,7 @@ async fn readyz(State(st): State<AppState>) -> Json<serde_json::Value> {
         "status": "ready",
         "store": {"claims": st.svc.store.claim_count()},
         "model": st.svc.model().version(),
+        "challenger": st.svc.challenger().map(|(m, _)| m.version().to_string()),
         "rules": st.svc.rules().version,
     }))
 }
@@ -788,6 +853,9 @@ pub fn app(svc: Service, settings: HttpSettings) -> Router {
         .route("/v1/monitor/drift", get(monitor_drift))
         .route("/v1/monitor/fairness", get(monitor_fairness))
         .route("/v1/export/training", get(export_training))
+        .route("/v1/monitor/compare", get(monitor_compare))
+        .route("/v1/admin/model", post(admin_model))
+        .route("/v1/admin/model/promote", post(admin_promote))
         .route("/v1/queues/{queue}", get(list_queue))
         .route("/v1/queues/{queue}/lease", post(lease))
         .route("/v1/queues/{queue}/items/{claim_id}/release", post(release))

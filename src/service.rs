@@ -12,7 +12,7 @@ use crate::features::{self, CATALOGUE};
 use crate::feedback::{OutcomeRecord, OutcomeReport};
 use crate::model::{Model, Reason};
 use crate::rules::{self, Queue, Routing, RuleSet};
-use crate::store::{DecisionRecord, IntakeStatus, QueueItem, Store, StoreError};
+use crate::store::{DecisionRecord, IntakeStatus, QueueItem, ShadowScore, Store, StoreError};
 use crate::telemetry::Metrics;
 use chrono::{DateTime, Utc};
 use serde::{Deserialize, Serialize};
@@ -76,6 +76,9 @@ pub enum ServiceError {
     Poisoned,
 }
 
+/// A challenger model and when it started shadow-scoring.
+pub type Challenger = (Arc<Model>, DateTime<Utc>);
+
 /// Shared state: cheap to clone.
 #[derive(Clone)]
 pub struct Service {
@@ -86,6 +89,8 @@ pub struct Service {
     pub lease_seconds: i64,
     pub metrics: Metrics,
     pub monitor: Arc<crate::config::Monitor>,
+    /// A model shadow-scoring every claim beside the champion, with when it started.
+    pub challenger: Arc<RwLock<Option<Challenger>>>,
     intake_lock: Arc<Mutex<()>>,
     queue_lock: Arc<Mutex<()>>,
 }
@@ -117,6 +122,7 @@ impl Service {
             lease_seconds,
             metrics,
             monitor: Arc::new(crate::config::Monitor::default()),
+            challenger: Arc::new(RwLock::new(None)),
             intake_lock: Arc::new(Mutex::new(())),
             queue_lock: Arc::new(Mutex::new(())),
         };
@@ -134,6 +140,48 @@ impl Service {
             .read()
             .map(|m| Arc::clone(&m))
             .unwrap_or_else(|p| Arc::clone(&p.into_inner()))
+    }
+
+    pub fn challenger(&self) -> Option<Challenger> {
+        self.challenger
+            .read()
+            .map(|c| c.clone())
+            .unwrap_or_else(|p| p.into_inner().clone())
+    }
+
+    /// Load a model without a restart: as champion (it decides from the next claim on; claims
+    /// being decided finish with the model they started with) or as challenger (shadow scores
+    /// only).
+    pub fn load_model(&self, model: Model, role: ModelRole, now: DateTime<Utc>) {
+        let model = Arc::new(model);
+        match role {
+            ModelRole::Champion => match self.model.write() {
+                Ok(mut m) => *m = model,
+                Err(p) => *p.into_inner() = model,
+            },
+            ModelRole::Challenger => match self.challenger.write() {
+                Ok(mut c) => *c = Some((model, now)),
+                Err(p) => *p.into_inner() = Some((model, now)),
+            },
+        }
+    }
+
+    /// Make the challenger the champion. `false` when there is no challenger.
+    pub fn promote(&self) -> bool {
+        let taken = match self.challenger.write() {
+            Ok(mut c) => c.take(),
+            Err(p) => p.into_inner().take(),
+        };
+        match taken {
+            Some((m, _)) => {
+                match self.model.write() {
+                    Ok(mut cur) => *cur = m,
+                    Err(p) => *p.into_inner() = m,
+                }
+                true
+            }
+            None => false,
+        }
     }
 
     pub fn rules(&self) -> Arc<RuleSet> {
@@ -184,6 +232,15 @@ impl Service {
         let rules = self.rules();
         let fv = features::compute(&claim, &self.store);
         let scored = model.score(&fv);
+        let challenger = self.challenger().map(|(c, _)| {
+            let s = c.score(&fv);
+            ShadowScore {
+                model_version: c.version().to_string(),
+                probability: s.probability,
+                outlier_score: s.outlier_score,
+                refers: s.probability >= c.artifact.threshold,
+            }
+        });
         let routed = rules::route(
             &rules,
             &self.routing,
@@ -251,6 +308,7 @@ impl Service {
                 .map(|(d, v)| (d.name.to_string(), *v))
                 .collect(),
             claim,
+            challenger,
         };
         // A claim already adjudicated is re-scored for the record but not queued again.
         let adjudicated = self.store.outcome(&rec.claim_id)?.is_some();
@@ -381,6 +439,31 @@ impl Service {
         }
         Ok(found)
     }
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ModelRole {
+    Champion,
+    Challenger,
+}
+
+/// Champion against challenger on claims both scored that have a labelled outcome.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Comparison {
+    pub champion_version: Option<String>,
+    pub challenger_version: Option<String>,
+    pub challenger_since: Option<String>,
+    pub claims_scored_by_both: usize,
+    pub labelled: usize,
+    pub positives: usize,
+    pub champion_auc: Option<f64>,
+    pub challenger_auc: Option<f64>,
+    /// Precision of each model's own referrals (probability at or above its threshold).
+    pub champion_precision: Option<f64>,
+    pub challenger_precision: Option<f64>,
+    /// Share of claims (scored by both) on which both models make the same referral decision.
+    pub agreement: Option<f64>,
 }
 
 /// Band of policy age at the loss, for the fairness read-out.
@@ -553,5 +636,51 @@ impl Service {
         self.quality(None, None)?;
         self.fairness()?;
         Ok(())
+    }
+}
+
+impl Service {
+    /// Champion against the current challenger on claims both scored.
+    pub fn compare(&self) -> Result<Comparison, ServiceError> {
+        let champion = self.model();
+        let challenger = self.challenger();
+        let cv = challenger.as_ref().map(|(m, _)| m.version().to_string());
+        let (mut both, mut agree) = (0usize, 0usize);
+        let (mut pc, mut pz, mut y) = (Vec::new(), Vec::new(), Vec::new());
+        let (mut cref, mut zref) = (Vec::new(), Vec::new());
+        self.store.for_each_latest(|rec, outcome| {
+            let Some(sh) = &rec.challenger else { return };
+            if cv.as_deref() != Some(sh.model_version.as_str())
+                || rec.model_version != champion.version()
+            {
+                return;
+            }
+            both += 1;
+            let champ_refers = rec.model_probability >= champion.artifact.threshold;
+            agree += usize::from(champ_refers == sh.refers);
+            if let Some(label) = outcome.and_then(|o| o.report.outcome.label()) {
+                pc.push(rec.model_probability);
+                pz.push(sh.probability);
+                y.push(label);
+                cref.push(champ_refers);
+                zref.push(sh.refers);
+            }
+        })?;
+        let precision = |refs: &[bool]| {
+            crate::metrics::Confusion::from_decisions(refs.iter().copied(), &y).precision()
+        };
+        Ok(Comparison {
+            champion_version: Some(champion.version().to_string()),
+            challenger_version: cv,
+            challenger_since: challenger.map(|(_, t)| t.to_rfc3339()),
+            claims_scored_by_both: both,
+            labelled: y.len(),
+            positives: y.iter().filter(|&&v| v).count(),
+            champion_auc: crate::metrics::roc_auc(&pc, &y),
+            challenger_auc: crate::metrics::roc_auc(&pz, &y),
+            champion_precision: precision(&cref),
+            challenger_precision: precision(&zref),
+            agreement: (both > 0).then(|| agree as f64 / both as f64),
+        })
     }
 }

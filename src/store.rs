@@ -83,6 +83,20 @@ pub struct DecisionRecord {
     /// Every catalogue feature, by name, as computed at decision time.
     pub features: BTreeMap<String, f64>,
     pub claim: Claim,
+    /// The challenger model's score of the same claim, when one was running (never used for
+    /// routing).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub challenger: Option<ShadowScore>,
+}
+
+/// A challenger's shadow score of one claim.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ShadowScore {
+    pub model_version: String,
+    pub probability: f64,
+    pub outlier_score: f64,
+    /// Whether the challenger's own threshold would refer the claim.
+    pub refers: bool,
 }
 
 /// One claim waiting in a review queue.

@@ -511,7 +511,7 @@ async fn operations_routes_and_openapi_match_the_router() {
     // Every operation in the OpenAPI document exists on the router (not a route-404 or 405).
     let (_, _, doc) = call(&app, Method::GET, "/v1/openapi.json", None, vec![]).await;
     let paths = doc["paths"].as_object().unwrap();
-    assert_eq!(paths.len(), 16, "document and router list 16 paths");
+    assert_eq!(paths.len(), 19, "document and router list 19 paths");
     for (path, ops) in paths {
         let uri = path
             .replace("{claim_id}", "M-1")
@@ -769,4 +769,129 @@ async fn drift_flags_the_shifted_feature_only() {
         );
     }
     assert_eq!(reports[0].claims_in_window, 2000);
+}
+
+fn renamed(d: &weir::demo_data::DemoClaim, prefix: &str) -> weir::claim::Claim {
+    let mut c = d.claim.clone();
+    c.claim_id = format!("{prefix}{}", c.claim_id);
+    c
+}
+
+/// The retraining loop: outcomes posted back, exported, trained on, the new model hot-loaded
+/// as challenger (shadow scores only), compared, then promoted while claims keep arriving,
+/// with no request failing during the swap.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn retrain_from_export_then_challenger_then_promotion_without_failures() {
+    let dir = tempdir("loop");
+    let svc = service(&dir);
+    let app = http::app(svc.clone(), settings());
+    let first = weir::demo_data::generate(1500, 31);
+    for d in &first {
+        let (rec, _) = svc.decide(d.claim.clone(), d.claim.reported_at).unwrap();
+        let on = d.claim.reported_at.date_naive() + chrono::Days::new(20);
+        // Every claim gets its ground truth here, as if the whole batch had been adjudicated.
+        svc.record_outcome(
+            &rec.claim_id,
+            report_for(d.outcome, on),
+            d.claim.reported_at,
+        )
+        .await
+        .unwrap();
+    }
+    let (status, _, export) = call(&app, Method::GET, "/v1/export/training", None, vec![]).await;
+    assert_eq!(status, StatusCode::OK);
+    let text = export.as_str().unwrap().to_string();
+    let mut cfg = Config::default();
+    cfg.training.trees.enabled = false;
+    cfg.training.alphas = vec![10.0];
+    let trained = train::train(
+        train::load(Cursor::new(text), BadLines::Refuse).unwrap(),
+        &cfg,
+        false,
+    )
+    .unwrap();
+    let new_version = trained.artifact.version.clone();
+    let (status, _, r) = call(
+        &app,
+        Method::POST,
+        "/v1/admin/model?role=challenger",
+        Some("application/json"),
+        trained.artifact.to_json().into_bytes(),
+    )
+    .await;
+    assert_eq!(status, StatusCode::OK, "{r}");
+    let (_, _, ready) = call(&app, Method::GET, "/readyz", None, vec![]).await;
+    assert_eq!(ready["challenger"], new_version.as_str());
+    assert_ne!(ready["model"], new_version.as_str());
+
+    // Shadow scoring: the challenger scores new claims but never routes them.
+    let second = weir::demo_data::generate(600, 32);
+    for d in &second {
+        let (rec, _) = svc.decide(renamed(d, "S-"), d.claim.reported_at).unwrap();
+        assert_eq!(rec.challenger.as_ref().unwrap().model_version, new_version);
+        let on = d.claim.reported_at.date_naive() + chrono::Days::new(20);
+        svc.record_outcome(
+            &rec.claim_id,
+            report_for(d.outcome, on),
+            d.claim.reported_at,
+        )
+        .await
+        .unwrap();
+    }
+    let (_, _, cmp) = call(&app, Method::GET, "/v1/monitor/compare", None, vec![]).await;
+    assert_eq!(cmp["claims_scored_by_both"], 600, "{cmp}");
+    assert!(cmp["champion_auc"].as_f64().unwrap() > 0.6, "{cmp}");
+    assert!(cmp["challenger_auc"].as_f64().unwrap() > 0.6, "{cmp}");
+    assert!(cmp["agreement"].as_f64().unwrap() > 0.5, "{cmp}");
+
+    // Promotion while claims arrive: every request succeeds.
+    let third = weir::demo_data::generate(300, 33);
+    let poster = {
+        let app = app.clone();
+        let claims: Vec<Value> = third
+            .iter()
+            .map(|d| serde_json::to_value(renamed(d, "T-")).unwrap())
+            .collect();
+        tokio::spawn(async move {
+            let mut statuses = Vec::new();
+            for c in claims {
+                statuses.push(post_claim(&app, &c).await.0);
+            }
+            statuses
+        })
+    };
+    tokio::time::sleep(std::time::Duration::from_millis(20)).await;
+    let (status, _, p) = call(&app, Method::POST, "/v1/admin/model/promote", None, vec![]).await;
+    assert_eq!(status, StatusCode::OK);
+    assert_eq!(p["champion"], new_version.as_str());
+    let statuses = poster.await.unwrap();
+    assert_eq!(statuses.len(), 300);
+    assert!(
+        statuses.iter().all(|s| *s == StatusCode::CREATED),
+        "{statuses:?}"
+    );
+    let (_, _, last) = call(&app, Method::GET, "/v1/claims/T-C-000300", None, vec![]).await;
+    assert_eq!(last["decision"]["model_version"], new_version.as_str());
+    let (status, _, _) = call(&app, Method::POST, "/v1/admin/model/promote", None, vec![]).await;
+    assert_eq!(
+        status,
+        StatusCode::NOT_FOUND,
+        "no challenger left to promote"
+    );
+    let (status, _, p) = call(
+        &app,
+        Method::POST,
+        "/v1/admin/model?role=champion",
+        Some("application/json"),
+        b"{\"format\": \"other\"}".to_vec(),
+    )
+    .await;
+    assert_eq!(status, StatusCode::BAD_REQUEST);
+    assert!(
+        p["errors"][0]["problem"]
+            .as_str()
+            .unwrap()
+            .contains("not supported"),
+        "{p}"
+    );
 }

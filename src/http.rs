@@ -728,6 +728,30 @@ async fn monitor_compare(State(st): State<AppState>) -> Result<Response, AppErro
     Ok(Json(st.svc.compare()?).into_response())
 }
 
+/// The self-contained HTML monitoring report.
+async fn report(State(st): State<AppState>) -> Result<Response, AppError> {
+    let svc = st.svc.clone();
+    let capacity: f64 = st
+        .settings
+        .capacities
+        .iter()
+        .filter(|(q, _)| matches!(q, Queue::Investigate | Queue::DeskCheck))
+        .map(|(_, c)| c)
+        .sum();
+    let html = tokio::task::spawn_blocking(move || {
+        svc.report_data(chrono::Utc::now(), capacity)
+            .map(|d| crate::report::render(&d))
+    })
+    .await
+    .map_err(|e| AppError::Internal(e.to_string()))??;
+    let mut r = html.into_response();
+    r.headers_mut().insert(
+        header::CONTENT_TYPE,
+        HeaderValue::from_static("text/html; charset=utf-8"),
+    );
+    Ok(r)
+}
+
 async fn healthz() -> Json<serde_json::Value> {
     Json(json!({"status": "ok"}))
 }
@@ -854,6 +878,7 @@ pub fn app(svc: Service, settings: HttpSettings) -> Router {
         .route("/v1/monitor/fairness", get(monitor_fairness))
         .route("/v1/export/training", get(export_training))
         .route("/v1/monitor/compare", get(monitor_compare))
+        .route("/v1/report", get(report))
         .route("/v1/admin/model", post(admin_model))
         .route("/v1/admin/model/promote", post(admin_promote))
         .route("/v1/queues/{queue}", get(list_queue))

@@ -22,7 +22,8 @@
 //!   queue and a priority.
 //! * [`store`]: the embedded sled store (atomic multi-tree writes, group-committed flushes);
 //!   [`service`]: intake and queue operations on it; [`http`]: the thin axum layer;
-//!   [`server`]: start-up and shutdown; [`telemetry`]: metrics and logs.
+//!   [`server`]: start-up and shutdown; [`telemetry`]: metrics and logs; [`report`]: the
+//!   self-contained HTML monitoring report.
 //! * [`config`]: the TOML configuration; [`demo_data`]: an invented scenario for trying it out;
 //!   [`demo`]: the whole loop on it; [`client`]: a small HTTP client for the demo and tests.
 //!
@@ -42,6 +43,7 @@ pub mod metrics;
 pub mod model;
 pub mod monitor;
 pub mod outliers;
+pub mod report;
 pub mod rules;
 pub mod server;
 pub mod service;

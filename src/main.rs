@@ -47,6 +47,14 @@ enum Command {
         #[arg(long)]
         out: PathBuf,
     },
+    /// Write the self-contained HTML monitoring report of a (stopped) store to DIR/report.html.
+    /// While the service runs, GET /v1/report gives the same page.
+    Report {
+        #[arg(long)]
+        config: Option<PathBuf>,
+        #[arg(long)]
+        out: PathBuf,
+    },
     /// Serve the HTTP API on the embedded sled store.
     Serve {
         /// Configuration file (defaults and WEIR_* environment overrides apply).
@@ -156,6 +164,18 @@ fn run(cli: Cli) -> Result<()> {
                 out.display(),
                 out.display()
             );
+            Ok(())
+        }
+        Command::Report { config, out } => {
+            let config = Config::load(config.as_deref())?;
+            let (svc, _) = weir::server::build(&config)?;
+            let capacity = config.queues.investigate_capacity + config.queues.desk_check_capacity;
+            let data = svc.report_data(chrono::Utc::now(), capacity)?;
+            std::fs::create_dir_all(&out)
+                .with_context(|| format!("cannot create {}", out.display()))?;
+            let path = out.join("report.html");
+            std::fs::write(&path, weir::report::render(&data))?;
+            println!("wrote {}", path.display());
             Ok(())
         }
         Command::Serve { config } => {

@@ -684,3 +684,34 @@ impl Service {
         })
     }
 }
+
+impl Service {
+    /// Everything the HTML report shows, at `now`.
+    pub fn report_data(
+        &self,
+        now: DateTime<Utc>,
+        daily_capacity: f64,
+    ) -> Result<crate::report::ReportData, ServiceError> {
+        let champion = self.model();
+        let (mut scores, mut labels) = (Vec::new(), Vec::new());
+        self.store.for_each_latest(|rec, outcome| {
+            if rec.model_version != champion.version() {
+                return;
+            }
+            if let Some(y) = outcome.and_then(|o| o.report.outcome.label()) {
+                scores.push(rec.model_probability);
+                labels.push(y);
+            }
+        })?;
+        Ok(crate::report::ReportData {
+            generated_at: now.to_rfc3339(),
+            model_version: champion.version().to_string(),
+            rules_version: self.rules().version.clone(),
+            scores,
+            labels,
+            quality: self.quality(None, None)?,
+            drift: self.drift(now)?,
+            daily_capacity,
+        })
+    }
+}

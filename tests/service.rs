@@ -511,7 +511,7 @@ async fn operations_routes_and_openapi_match_the_router() {
     // Every operation in the OpenAPI document exists on the router (not a route-404 or 405).
     let (_, _, doc) = call(&app, Method::GET, "/v1/openapi.json", None, vec![]).await;
     let paths = doc["paths"].as_object().unwrap();
-    assert_eq!(paths.len(), 19, "document and router list 19 paths");
+    assert_eq!(paths.len(), 20, "document and router list 20 paths");
     for (path, ops) in paths {
         let uri = path
             .replace("{claim_id}", "M-1")
@@ -705,6 +705,48 @@ async fn confusion_counts_by_week_match_an_independent_count() {
         q2.totals.total() + 1,
         q.totals.total(),
         "the withdrawn claim leaves the labelled counts"
+    );
+
+    // The HTML report is well-formed XML with all five charts, each titled for screen readers.
+    let html = weir::report::render(&svc.report_data(chrono::Utc::now(), 7.5).unwrap());
+    let mut reader = quick_xml::Reader::from_str(&html);
+    let (mut svgs, mut titles) = (0, Vec::new());
+    let mut in_title = false;
+    loop {
+        match reader.read_event() {
+            Ok(quick_xml::events::Event::Eof) => break,
+            Ok(quick_xml::events::Event::Start(e)) => {
+                svgs += usize::from(e.name().as_ref() == b"svg");
+                in_title = e.name().as_ref() == b"title";
+            }
+            Ok(quick_xml::events::Event::Text(t)) if in_title => {
+                titles.push(t.unescape().unwrap().into_owned());
+                in_title = false;
+            }
+            Ok(_) => {}
+            Err(e) => panic!(
+                "report is not well-formed at {}: {e}",
+                reader.buffer_position()
+            ),
+        }
+    }
+    assert_eq!(svgs, 5, "five charts");
+    for chart in [
+        "ROC curve",
+        "Precision by week",
+        "Referrals against capacity",
+        "PSI per feature",
+        "Calibration",
+    ] {
+        assert!(
+            titles.iter().any(|t| t == chart),
+            "{chart} missing from {titles:?}"
+        );
+    }
+    assert!(html.contains("not a finding of fraud"));
+    assert!(
+        !html.contains("needs adjudicated claims"),
+        "the ROC chart had data"
     );
 
     // The export is a training file: every claim once, outcomes where posted, and it trains.

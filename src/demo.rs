@@ -55,16 +55,16 @@ pub async fn run(o: DemoOptions) -> Result<()> {
     let trained = train::train(loaded, &config, false)?;
     std::fs::write(&config.paths.model, trained.artifact.to_json())?;
     std::fs::write(
-        o.dir.join("report.json"),
+        o.dir.join("training-report.json"),
         serde_json::to_string_pretty(&trained.report)?,
     )?;
     let champ = &trained.report.held_out[0];
     println!(
-        "2. trained {} on the earlier two thirds: held-out ROC AUC {:.3}, precision at capacity {:.1}% (report: {})",
+        "2. trained {} on the earlier two thirds: held-out ROC AUC {:.3}, precision at capacity {:.1}% (training report: {})",
         trained.report.champion,
         champ.auc.unwrap_or(f64::NAN),
         champ.precision_at_capacity.unwrap_or(0.0) * 100.0,
-        o.dir.join("report.json").display()
+        o.dir.join("training-report.json").display()
     );
 
     if !config.paths.rules.exists() {
@@ -152,6 +152,46 @@ pub async fn run(o: DemoOptions) -> Result<()> {
             }
         }
     }
+    // Investigators close the referred and audited cases: the demo posts each one's
+    // ground-truth outcome, as the adjudication would have found it, 30 days after the report.
+    let mut posted = 0;
+    for line in reply.body.split(|&b| b == b'\n').filter(|l| !l.is_empty()) {
+        let v: serde_json::Value = serde_json::from_slice(line)?;
+        let (Some(id), Some(q)) = (v["claim_id"].as_str(), v["queue"].as_str()) else {
+            continue;
+        };
+        if q == Queue::NoReview.as_str() {
+            continue;
+        }
+        let Some(d) = claims.iter().find(|c| c.claim.claim_id == id) else {
+            continue;
+        };
+        let body = serde_json::json!({
+            "outcome": d.outcome.as_str(),
+            "adjudicated_on": (d.claim.reported_at.date_naive() + chrono::Days::new(30)).to_string(),
+            "decided_by": "demo-panel",
+        });
+        let r = client::post_json(addr, &format!("/v1/claims/{id}/outcome"), &body).await?;
+        if !r.status.is_success() {
+            bail!("outcome for {id} answered {}", r.status);
+        }
+        posted += 1;
+    }
+    let q = client::get(addr, "/v1/monitor/quality").await?.json()?;
+    let p = &q["precision"];
+    println!(
+        "\n6. posted {posted} adjudicated outcomes for the referred and audited claims; precision of referrals {:.1}% (95% interval {:.1}% to {:.1}%, {} adjudicated referrals)",
+        p["precision"].as_f64().unwrap_or(f64::NAN) * 100.0,
+        p["interval"][0].as_f64().unwrap_or(f64::NAN) * 100.0,
+        p["interval"][1].as_f64().unwrap_or(f64::NAN) * 100.0,
+        p["referred_labelled"]
+    );
+    println!("   {}", q["audit"]["note"].as_str().unwrap_or(""));
+    let html = client::get(addr, "/v1/report").await?;
+    let report = o.dir.join("report.html");
+    std::fs::write(&report, &html.body)?;
+    println!("7. monitoring report written to {}", report.display());
+
     println!(
         "\nA referral is a prompt for human review, not a finding of fraud: payment decisions follow\nthe insurer's own procedures and the law where it operates."
     );

@@ -186,7 +186,20 @@ pub async fn run(o: DemoOptions) -> Result<()> {
         p["interval"][1].as_f64().unwrap_or(f64::NAN) * 100.0,
         p["referred_labelled"]
     );
-    println!("   {}", q["audit"]["note"].as_str().unwrap_or(""));
+    let a = &q["audit"];
+    if let (Some(r), Some(lo), Some(hi)) = (
+        a["recall"].as_f64(),
+        a["recall_interval"][0].as_f64(),
+        a["recall_interval"][1].as_f64(),
+    ) {
+        println!(
+            "   estimated recall {:.1}% (from the audit sample: {:.1}% to {:.1}%)",
+            r * 100.0,
+            lo * 100.0,
+            hi * 100.0
+        );
+    }
+    println!("   {}", a["note"].as_str().unwrap_or(""));
     let html = client::get(addr, "/v1/report").await?;
     let report = o.dir.join("report.html");
     std::fs::write(&report, &html.body)?;

@@ -200,6 +200,14 @@ fn precision_chart(out: &mut String, weeks: &[(String, u64, u64)]) {
         }
     }
     polyline(out, &f, &pts, "#1b5e7a", false);
+    for (x, y) in &pts {
+        let _ = write!(
+            out,
+            r##"<circle cx="{:.1}" cy="{:.1}" r="3.5" fill="#1b5e7a"/>"##,
+            f.x(*x),
+            f.y(*y)
+        );
+    }
     out.push_str("</svg>");
 }
 
@@ -373,7 +381,7 @@ pub fn render(d: &ReportData) -> String {
     out.push_str("<!DOCTYPE html>\n<html xmlns=\"http://www.w3.org/1999/xhtml\" lang=\"en\"><head><meta charset=\"utf-8\"/><meta name=\"viewport\" content=\"width=device-width, initial-scale=1\"/><title>weir monitoring report</title><style>body{font-family:system-ui,sans-serif;max-width:1200px;margin:1.5rem auto;padding:0 1rem;color:#1d1d1d;background:#fbfaf7}h1{font-size:1.5rem}h2{font-size:1.1rem;margin-top:0}.caution{border-left:4px solid #b8520f;background:#fff4ea;padding:.6rem 1rem}.grid{display:grid;grid-template-columns:repeat(auto-fit,minmax(560px,1fr));gap:1.2rem}figure{margin:0;background:#fff;border:1px solid #ddd;padding:.8rem}svg{max-width:100%;height:auto}table{border-collapse:collapse}td,th{padding:.2rem .6rem;border-bottom:1px solid #ddd;text-align:left}</style></head><body>");
     let _ = write!(
         out,
-        "<h1>weir monitoring report</h1><p class=\"caution\">A referral is a prompt for human review, not a finding of fraud. Payment decisions follow the insurer's own procedures, fair claims handling rules and the law where it operates.</p><table><tr><th>generated</th><td>{}</td></tr><tr><th>champion model</th><td>{}</td></tr><tr><th>rules</th><td>{}</td></tr><tr><th>adjudicated claims</th><td>{} ({} referral-worthy)</td></tr><tr><th>ROC AUC on adjudicated claims</th><td>{}</td></tr><tr><th>precision of referrals</th><td>{} (95% Wilson interval {})</td></tr><tr><th>referrals awaiting an outcome</th><td>{}</td></tr><tr><th>recall (audit sample)</th><td>{}</td></tr></table><p>{}</p>",
+        "<h1>weir monitoring report</h1><p class=\"caution\">A referral is a prompt for human review, not a finding of fraud. Payment decisions follow the insurer's own procedures, fair claims handling rules and the law where it operates.</p><table><tr><th>generated</th><td>{}</td></tr><tr><th>champion model</th><td>{}</td></tr><tr><th>rules</th><td>{}</td></tr><tr><th>adjudicated claims</th><td>{} ({} referral-worthy)</td></tr><tr><th>ROC AUC on adjudicated claims</th><td>{}</td></tr><tr><th>precision of referrals</th><td>{} (95% Wilson interval {})</td></tr><tr><th>referrals awaiting an outcome</th><td>{}</td></tr><tr><th>recall (audit sample)</th><td>{} (95% interval from the audit sample {})</td></tr></table><p>{}</p>",
         esc(&d.generated_at),
         esc(&d.model_version),
         esc(&d.rules_version),
@@ -391,6 +399,14 @@ pub fn render(d: &ReportData) -> String {
             )),
         pct(d.quality.share_awaiting_outcome),
         pct(d.quality.audit.recall),
+        d.quality
+            .audit
+            .recall_interval
+            .map_or("-".into(), |(l, h)| format!(
+                "{:.1}% to {:.1}%",
+                l * 100.0,
+                h * 100.0
+            )),
         esc(&d.quality.audit.note),
     );
     out.push_str("<div class=\"grid\">");

@@ -87,6 +87,11 @@ pub struct AuditEstimate {
     pub unreferred_positive_rate: Option<f64>,
     pub unreferred_positive_interval: Option<(f64, f64)>,
     pub recall: Option<f64>,
+    /// Recall at the two ends of the Wilson interval of the unreferred positive rate (the
+    /// precision of referrals held at its estimate): how far the audit sample's own
+    /// uncertainty moves recall. A sample with no positive in it gives recall 1 with a wide
+    /// interval, not a certainty.
+    pub recall_interval: Option<(f64, f64)>,
     pub specificity: Option<f64>,
     /// False when the sample is too small to say anything (fewer than
     /// [`MIN_AUDIT_SAMPLE`] labelled audit claims); the estimates are then withheld.
@@ -184,19 +189,27 @@ pub fn quality(
     };
     let sufficient = audit_n >= MIN_AUDIT_SAMPLE && referred_labelled > 0;
     let rate = (audit_n > 0).then(|| audit_pos as f64 / audit_n as f64);
+    // Expected counts over every decided claim in the window.
+    let recall_at = |p: f64, r: f64| {
+        let tp = p * referred_n as f64;
+        let fn_ = r * unreferred_n as f64;
+        (tp + fn_ > 0.0).then(|| tp / (tp + fn_))
+    };
     let (recall, specificity) = match (sufficient, rate, totals.precision()) {
         (true, Some(r), Some(p)) => {
-            // Expected counts over every decided claim in the window.
-            let tp = p * referred_n as f64;
             let fp = (1.0 - p) * referred_n as f64;
-            let fn_ = r * unreferred_n as f64;
             let tn = (1.0 - r) * unreferred_n as f64;
-            (
-                (tp + fn_ > 0.0).then(|| tp / (tp + fn_)),
-                (tn + fp > 0.0).then(|| tn / (tn + fp)),
-            )
+            (recall_at(p, r), (tn + fp > 0.0).then(|| tn / (tn + fp)))
         }
         _ => (None, None),
+    };
+    let recall_interval = match (
+        sufficient,
+        wilson(audit_pos, audit_n, Z95),
+        totals.precision(),
+    ) {
+        (true, Some((r_lo, r_hi)), Some(p)) => recall_at(p, r_hi).zip(recall_at(p, r_lo)),
+        _ => None,
     };
     let note = if sufficient {
         format!(
@@ -222,6 +235,7 @@ pub fn quality(
             unreferred_positive_rate: rate,
             unreferred_positive_interval: wilson(audit_pos, audit_n, Z95),
             recall: if sufficient { recall } else { None },
+            recall_interval,
             specificity: if sufficient { specificity } else { None },
             sufficient,
             note,
@@ -313,6 +327,41 @@ mod tests {
             outcome,
             segments: [("line".to_string(), line.to_string())].into(),
         }
+    }
+
+    #[test]
+    fn recall_from_the_audit_sample_by_hand() {
+        // 10 referrals, 6 worth it (precision 0.6); 38 audit claims of which 2 worth it, plus
+        // 152 unreferred claims without outcome: 190 unreferred in all.
+        let mut o = Vec::new();
+        for i in 0..10 {
+            let out = if i < 6 {
+                Outcome::FraudConfirmed
+            } else {
+                Outcome::Genuine
+            };
+            o.push(obs(Queue::Investigate, Some(out), "motor"));
+        }
+        for i in 0..38 {
+            let out = if i < 2 {
+                Outcome::Inflated
+            } else {
+                Outcome::Genuine
+            };
+            o.push(obs(Queue::Audit, Some(out), "home"));
+        }
+        for _ in 0..152 {
+            o.push(obs(Queue::NoReview, None, "home"));
+        }
+        let q = quality(&o, None, None);
+        assert!(q.audit.sufficient);
+        // Expected TP = 0.6 * 10 = 6; expected FN = (2/38) * 190 = 10; recall = 6/16.
+        let r = q.audit.recall.unwrap();
+        assert!((r - 6.0 / 16.0).abs() < 1e-12, "{r}");
+        let (lo, hi) = q.audit.recall_interval.unwrap();
+        assert!(lo < r && r < hi, "{lo} {r} {hi}");
+        // Specificity: TN = (36/38) * 190 = 180, FP = 4; 180 / 184.
+        assert!((q.audit.specificity.unwrap() - 180.0 / 184.0).abs() < 1e-12);
     }
 
     #[test]

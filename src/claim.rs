@@ -124,6 +124,79 @@ pub struct Claim {
     pub circumstances: Circumstances,
 }
 
+/// Parse JSON, refusing an object that names the same key twice: `serde_json::Value` would
+/// silently keep the last one, and two systems reading the same claim must not disagree on
+/// its amount. Nesting is bounded by serde_json's recursion limit (128).
+pub fn strict_json(bytes: &[u8]) -> Result<Value, serde_json::Error> {
+    serde_json::from_slice::<Strict>(bytes).map(|s| s.0)
+}
+
+struct Strict(Value);
+
+impl<'de> serde::Deserialize<'de> for Strict {
+    fn deserialize<D: serde::Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        d.deserialize_any(StrictVisitor).map(Strict)
+    }
+}
+
+struct StrictVisitor;
+
+impl<'de> serde::de::Visitor<'de> for StrictVisitor {
+    type Value = Value;
+
+    fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str("any JSON value")
+    }
+    fn visit_bool<E>(self, v: bool) -> Result<Value, E> {
+        Ok(Value::Bool(v))
+    }
+    fn visit_i64<E>(self, v: i64) -> Result<Value, E> {
+        Ok(Value::from(v))
+    }
+    fn visit_u64<E>(self, v: u64) -> Result<Value, E> {
+        Ok(Value::from(v))
+    }
+    fn visit_f64<E: serde::de::Error>(self, v: f64) -> Result<Value, E> {
+        serde_json::Number::from_f64(v)
+            .map(Value::Number)
+            .ok_or_else(|| E::custom("number out of range"))
+    }
+    fn visit_str<E>(self, v: &str) -> Result<Value, E> {
+        Ok(Value::String(v.to_string()))
+    }
+    fn visit_string<E>(self, v: String) -> Result<Value, E> {
+        Ok(Value::String(v))
+    }
+    fn visit_unit<E>(self) -> Result<Value, E> {
+        Ok(Value::Null)
+    }
+    fn visit_none<E>(self) -> Result<Value, E> {
+        Ok(Value::Null)
+    }
+    fn visit_some<D: serde::Deserializer<'de>>(self, d: D) -> Result<Value, D::Error> {
+        d.deserialize_any(StrictVisitor)
+    }
+    fn visit_seq<A: serde::de::SeqAccess<'de>>(self, mut seq: A) -> Result<Value, A::Error> {
+        let mut out = Vec::new();
+        while let Some(Strict(v)) = seq.next_element()? {
+            out.push(v);
+        }
+        Ok(Value::Array(out))
+    }
+    fn visit_map<A: serde::de::MapAccess<'de>>(self, mut map: A) -> Result<Value, A::Error> {
+        let mut out = Map::new();
+        while let Some(k) = map.next_key::<String>()? {
+            if out.contains_key(&k) {
+                let shown: String = k.chars().take(40).collect();
+                return Err(serde::de::Error::custom(format!("duplicate key {shown:?}")));
+            }
+            let Strict(v) = map.next_value()?;
+            out.insert(k, v);
+        }
+        Ok(Value::Object(out))
+    }
+}
+
 /// `loss_time` travels as "HH:MM", the form the validator accepts.
 mod hhmm {
     use chrono::NaiveTime;
@@ -198,7 +271,7 @@ impl ClaimError {
 impl Claim {
     /// Parse and validate one claim from JSON bytes.
     pub fn from_json(bytes: &[u8]) -> Result<Claim, ClaimError> {
-        let value: Value = serde_json::from_slice(bytes).map_err(|e| ClaimError::NotJson {
+        let value: Value = strict_json(bytes).map_err(|e| ClaimError::NotJson {
             line: e.line(),
             column: e.column(),
             message: e.to_string(),
@@ -729,6 +802,23 @@ mod tests {
         assert!(matches!(err, ClaimError::NotJson { line: 1, .. }), "{err}");
         let err = Claim::from_json(b"[1,2]").unwrap_err();
         assert_eq!(err.field_errors()[0].field, "");
+    }
+
+    #[test]
+    fn duplicate_keys_are_refused_at_any_depth() {
+        let err = Claim::from_json(br#"{"claim_id": "a", "claim_id": "b"}"#).unwrap_err();
+        assert!(
+            err.to_string().contains("duplicate key \"claim_id\""),
+            "{err}"
+        );
+        let err = strict_json(br#"{"p": [{"role": "x", "role": "y"}]}"#).unwrap_err();
+        assert!(err.to_string().contains("duplicate key"), "{err}");
+        let deep = "[".repeat(200) + &"]".repeat(200);
+        assert!(strict_json(deep.as_bytes()).is_err(), "nesting is bounded");
+        assert_eq!(
+            strict_json(br#"{"a": [1, 2.5, null, true, "x"]}"#).unwrap()["a"][1],
+            2.5
+        );
     }
 
     #[test]

@@ -524,7 +524,7 @@ async fn lease(
     let queue = queue_param(&name)?;
     require_type(&headers, "application/json")?;
     let bytes = read_body(body, st.settings.body_limit_bytes).await?;
-    let v: serde_json::Value = serde_json::from_slice(&bytes).map_err(|e| {
+    let v = crate::claim::strict_json(&bytes).map_err(|e| {
         AppError::BadRequest(vec![FieldError {
             field: String::new(),
             problem: format!("not valid JSON: {e}"),
@@ -570,7 +570,7 @@ async fn post_outcome(
     check_id("claim_id", &claim_id)?;
     require_type(&headers, "application/json")?;
     let bytes = read_body(body, st.settings.body_limit_bytes).await?;
-    let v: serde_json::Value = serde_json::from_slice(&bytes).map_err(|e| {
+    let v = crate::claim::strict_json(&bytes).map_err(|e| {
         AppError::NotJson(ClaimError::NotJson {
             line: e.line(),
             column: e.column(),

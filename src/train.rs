@@ -86,7 +86,7 @@ pub struct Loaded {
 pub const UNADJUDICATED: &str = "unadjudicated";
 
 fn parse_line(text: &str) -> Result<(Claim, Option<Outcome>), String> {
-    let v: serde_json::Value = serde_json::from_str(text).map_err(|e| format!("not JSON: {e}"))?;
+    let v = crate::claim::strict_json(text.as_bytes()).map_err(|e| format!("not JSON: {e}"))?;
     let outcome = match v.get("outcome") {
         None | Some(serde_json::Value::Null) => Err(format!(
             "outcome: required (use \"{UNADJUDICATED}\" for a claim without one)"

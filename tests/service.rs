@@ -937,3 +937,530 @@ async fn retrain_from_export_then_challenger_then_promotion_without_failures() {
         "{p}"
     );
 }
+
+/// One hostile or broken request and the status it must get.
+struct Hostile {
+    name: String,
+    method: Method,
+    uri: String,
+    content_type: Option<&'static str>,
+    body: Vec<u8>,
+    status: u16,
+}
+
+fn hostile_corpus() -> Vec<Hostile> {
+    let mut out = Vec::new();
+    let mut claim_case = |name: &str, body: Vec<u8>, status: u16| {
+        out.push(Hostile {
+            name: name.to_string(),
+            method: Method::POST,
+            uri: "/v1/claims".into(),
+            content_type: Some("application/json"),
+            body,
+            status,
+        })
+    };
+    let base = claim("H-1");
+    let with = |f: &dyn Fn(&mut Value)| {
+        let mut v = base.clone();
+        f(&mut v);
+        serde_json::to_vec(&v).unwrap()
+    };
+    // Missing required fields.
+    for k in [
+        "claim_id",
+        "policy_id",
+        "claimant_id",
+        "line",
+        "loss_date",
+        "reported_at",
+        "policy_start",
+        "claimed_amount",
+        "sum_insured",
+        "currency",
+        "circumstances",
+    ] {
+        claim_case(
+            &format!("missing {k}"),
+            with(&|v| {
+                v.as_object_mut().unwrap().remove(k);
+            }),
+            422,
+        );
+    }
+    // Wrong types.
+    for (k, bad) in [
+        ("claim_id", json!(17)),
+        ("policy_id", json!(["P"])),
+        ("claimant_id", json!({"id": 1})),
+        ("line", json!(true)),
+        ("loss_date", json!(20250310)),
+        ("loss_time", json!(2315)),
+        ("reported_at", json!(false)),
+        ("policy_start", json!([])),
+        ("claimed_amount", json!("4200")),
+        ("sum_insured", json!(true)),
+        ("currency", json!(978)),
+        ("region", json!(5)),
+        ("address_id", json!({})),
+        ("parties", json!({"role": "repairer"})),
+        ("circumstances", json!("none")),
+    ] {
+        claim_case(
+            &format!("{k} of the wrong type"),
+            with(&|v| v[k] = bad.clone()),
+            422,
+        );
+    }
+    // Impossible amounts.
+    for (k, bad) in [
+        ("claimed_amount", json!(-1)),
+        ("claimed_amount", json!(0)),
+        ("claimed_amount", json!(2e9)),
+        ("claimed_amount", json!(1e300)),
+        ("claimed_amount", json!(null)),
+        ("sum_insured", json!(-5)),
+        ("sum_insured", json!(0)),
+        ("sum_insured", json!(1e11)),
+    ] {
+        claim_case(&format!("{k} = {bad}"), with(&|v| v[k] = bad.clone()), 422);
+    }
+    let text = String::from_utf8(with(&|_| {})).unwrap();
+    for lit in ["NaN", "Infinity", "-Infinity", "1e400", "0x10", "+5"] {
+        claim_case(
+            &format!("claimed_amount literal {lit}"),
+            text.replace("9000.0", lit).into_bytes(),
+            400,
+        );
+    }
+    // Dates and times.
+    for (k, bad) in [
+        ("loss_date", "2025-02-30"),
+        ("loss_date", "1800-01-01"),
+        ("loss_date", "3000-01-01"),
+        ("loss_date", "yesterday"),
+        ("loss_date", "2025-13-01"),
+        ("loss_date", "2025-06-01"),
+        ("reported_at", "2025-03-12"),
+        ("reported_at", "not a time"),
+        ("reported_at", "0001-01-01T00:00:00Z"),
+        ("policy_start", ""),
+        ("loss_time", "25:00"),
+        ("loss_time", "12:60"),
+        ("loss_time", "noon"),
+    ] {
+        claim_case(&format!("{k} = {bad:?}"), with(&|v| v[k] = json!(bad)), 422);
+    }
+    // Strings.
+    for (k, bad) in [
+        ("claim_id", "x".repeat(200)),
+        ("claim_id", String::new()),
+        ("claim_id", "   ".into()),
+        ("claim_id", "a\u{0}b".into()),
+        ("claimant_id", "line\nbreak".into()),
+        ("policy_id", "y".repeat(129)),
+        ("currency", "eur".into()),
+        ("currency", "EURO".into()),
+        ("currency", "€€€".into()),
+        ("line", "Motor".into()),
+        ("line", "boat".into()),
+        ("region", "z".repeat(300)),
+        ("address_id", "\u{7}".into()),
+    ] {
+        claim_case(
+            &format!("{k} = {:?}", bad.chars().take(12).collect::<String>()),
+            with(&|v| v[k] = json!(bad)),
+            422,
+        );
+    }
+    // Parties and circumstances.
+    let many: Vec<Value> = (0..51)
+        .map(|i| json!({"role": "witness", "id": format!("W-{i}")}))
+        .collect();
+    claim_case("51 parties", with(&|v| v["parties"] = json!(many)), 422);
+    claim_case(
+        "unknown party role",
+        with(&|v| v["parties"][0]["role"] = json!("uncle")),
+        422,
+    );
+    claim_case(
+        "party without id",
+        with(&|v| {
+            v["parties"][0].as_object_mut().unwrap().remove("id");
+        }),
+        422,
+    );
+    claim_case(
+        "party with extra field",
+        with(&|v| v["parties"][0]["phone"] = json!("555")),
+        422,
+    );
+    claim_case(
+        "party id too long",
+        with(&|v| v["parties"][1]["id"] = json!("b".repeat(500))),
+        422,
+    );
+    claim_case(
+        "party not an object",
+        with(&|v| v["parties"][0] = json!("R-9")),
+        422,
+    );
+    claim_case(
+        "extra top-level field",
+        with(&|v| v["fraud"] = json!(true)),
+        422,
+    );
+    claim_case(
+        "extra circumstance",
+        with(&|v| v["circumstances"]["weather"] = json!("rain")),
+        422,
+    );
+    claim_case(
+        "circumstances without police_report",
+        with(&|v| {
+            v["circumstances"]
+                .as_object_mut()
+                .unwrap()
+                .remove("police_report");
+        }),
+        422,
+    );
+    claim_case(
+        "circumstance not a boolean",
+        with(&|v| v["circumstances"]["injury"] = json!("yes")),
+        422,
+    );
+    // Structure of the document itself.
+    let valid = with(&|_| {});
+    for cut in [1, 10, valid.len() / 2, valid.len() - 1] {
+        claim_case(&format!("truncated at {cut}"), valid[..cut].to_vec(), 400);
+    }
+    for (name, body) in [
+        ("empty body", b"".to_vec()),
+        ("an array", b"[]".to_vec()),
+        ("null", b"null".to_vec()),
+        ("a string", b"\"claim\"".to_vec()),
+        ("a number", b"42".to_vec()),
+        ("trailing garbage", [valid.clone(), b"}".to_vec()].concat()),
+        ("two documents", [valid.clone(), valid.clone()].concat()),
+    ] {
+        let status = if matches!(name, "an array" | "null" | "a string" | "a number") {
+            422
+        } else {
+            400
+        };
+        claim_case(name, body, status);
+    }
+    claim_case(
+        "deeply nested array",
+        ("[".repeat(5000) + &"]".repeat(5000)).into_bytes(),
+        400,
+    );
+    claim_case(
+        "deeply nested field",
+        text.replace("\"EUR\"", &("[".repeat(300) + &"]".repeat(300)))
+            .into_bytes(),
+        400,
+    );
+    claim_case(
+        "duplicate top-level key",
+        text.replacen("{", "{\"claimed_amount\": 1.0, ", 1)
+            .into_bytes(),
+        400,
+    );
+    claim_case(
+        "duplicate key in a party",
+        text.replacen(
+            "\"role\":\"repairer\"",
+            "\"role\":\"repairer\",\"role\":\"attorney\"",
+            1,
+        )
+        .into_bytes(),
+        400,
+    );
+    claim_case(
+        "invalid UTF-8",
+        [
+            b"{\"claim_id\": \"".to_vec(),
+            vec![0xff, 0xfe],
+            b"\"}".to_vec(),
+        ]
+        .concat(),
+        400,
+    );
+    claim_case(
+        "UTF-8 byte order mark",
+        [vec![0xef, 0xbb, 0xbf], valid.clone()].concat(),
+        400,
+    );
+    claim_case(
+        "UTF-16 body",
+        text.encode_utf16().flat_map(|u| u.to_le_bytes()).collect(),
+        400,
+    );
+    claim_case(
+        "oversized body",
+        [
+            b"{\"claim_id\": \"".to_vec(),
+            vec![b'a'; 40_000],
+            b"\"}".to_vec(),
+        ]
+        .concat(),
+        413,
+    );
+    // Content types and methods.
+    for ct in [
+        Some("text/plain"),
+        None,
+        Some("application/xml"),
+        Some("multipart/form-data"),
+        Some("application/x-ndjson"),
+    ] {
+        out.push(Hostile {
+            name: format!("content type {ct:?}"),
+            method: Method::POST,
+            uri: "/v1/claims".into(),
+            content_type: ct,
+            body: valid.clone(),
+            status: 415,
+        });
+    }
+    out.push(Hostile {
+        name: "batch as JSON".into(),
+        method: Method::POST,
+        uri: "/v1/claims/batch".into(),
+        content_type: Some("application/json"),
+        body: valid.clone(),
+        status: 415,
+    });
+    for (m, uri) in [
+        (Method::PUT, "/v1/claims"),
+        (Method::DELETE, "/v1/claims"),
+        (Method::PATCH, "/v1/claims"),
+        (Method::GET, "/v1/claims"),
+        (Method::DELETE, "/v1/claims/H-0"),
+        (Method::GET, "/v1/claims/H-0/outcome"),
+        (Method::GET, "/v1/queues/audit/lease"),
+        (Method::PUT, "/v1/queues"),
+    ] {
+        out.push(Hostile {
+            name: format!("{m} {uri}"),
+            method: m,
+            uri: uri.into(),
+            content_type: None,
+            body: vec![],
+            status: 405,
+        });
+    }
+    // Unknown ids, paths and query values.
+    let get = |name: &str, uri: &str, status: u16| Hostile {
+        name: name.into(),
+        method: Method::GET,
+        uri: uri.into(),
+        content_type: None,
+        body: vec![],
+        status,
+    };
+    let gets = vec![
+        get("unknown claim", "/v1/claims/NOPE", 404),
+        get(
+            "path traversal in claim id",
+            "/v1/claims/..%2F..%2Fetc%2Fpasswd",
+            404,
+        ),
+        get("dot-dot claim id", "/v1/claims/..", 404),
+        get("NUL in claim id", "/v1/claims/a%00b", 400),
+        get(
+            "overlong claim id",
+            &format!("/v1/claims/{}", "c".repeat(300)),
+            400,
+        ),
+        get("unknown queue", "/v1/queues/everything", 404),
+        get(
+            "no_review is not a worked queue",
+            "/v1/queues/no_review",
+            404,
+        ),
+        get("dot-dot queue", "/v1/queues/..", 404),
+        get("limit not a number", "/v1/queues/audit?limit=abc", 400),
+        get("limit too large", "/v1/queues/audit?limit=100000", 400),
+        get("negative offset", "/v1/queues/audit?offset=-1", 400),
+        get("bad from date", "/v1/monitor/quality?from=last-week", 400),
+        get("unknown route", "/v1/admin", 404),
+        get("unknown version", "/v2/claims/H-0", 404),
+    ];
+    out.extend(gets);
+    // Outcomes and leases.
+    let post = |name: &str, uri: &str, body: Vec<u8>, status: u16| Hostile {
+        name: name.into(),
+        method: Method::POST,
+        uri: uri.into(),
+        content_type: Some("application/json"),
+        body,
+        status,
+    };
+    let outcome =
+        json!({"outcome": "genuine", "adjudicated_on": "2025-05-01", "decided_by": "inv-1"});
+    let with_o = |f: &dyn Fn(&mut Value)| {
+        let mut v = outcome.clone();
+        f(&mut v);
+        serde_json::to_vec(&v).unwrap()
+    };
+    let posts = vec![
+        post(
+            "outcome for unknown claim",
+            "/v1/claims/NOPE/outcome",
+            with_o(&|_| {}),
+            404,
+        ),
+        post(
+            "unknown outcome",
+            "/v1/claims/H-0/outcome",
+            with_o(&|v| v["outcome"] = json!("guilty")),
+            400,
+        ),
+        post(
+            "negative amount saved",
+            "/v1/claims/H-0/outcome",
+            with_o(&|v| v["amount_saved"] = json!(-10)),
+            400,
+        ),
+        post(
+            "huge amount recovered",
+            "/v1/claims/H-0/outcome",
+            with_o(&|v| v["amount_recovered"] = json!(1e12)),
+            400,
+        ),
+        post(
+            "impossible adjudication date",
+            "/v1/claims/H-0/outcome",
+            with_o(&|v| v["adjudicated_on"] = json!("2025-02-31")),
+            400,
+        ),
+        post(
+            "outcome without decided_by",
+            "/v1/claims/H-0/outcome",
+            with_o(&|v| {
+                v.as_object_mut().unwrap().remove("decided_by");
+            }),
+            400,
+        ),
+        post(
+            "outcome with extra field",
+            "/v1/claims/H-0/outcome",
+            with_o(&|v| v["note"] = json!("looks dodgy")),
+            400,
+        ),
+        post(
+            "outcome not JSON",
+            "/v1/claims/H-0/outcome",
+            b"fraud!".to_vec(),
+            400,
+        ),
+        post(
+            "outcome with duplicate key",
+            "/v1/claims/H-0/outcome",
+            br#"{"outcome": "genuine", "outcome": "inflated"}"#.to_vec(),
+            400,
+        ),
+        post(
+            "lease without investigator",
+            "/v1/queues/audit/lease",
+            b"{}".to_vec(),
+            400,
+        ),
+        post(
+            "lease with overlong investigator",
+            "/v1/queues/audit/lease",
+            serde_json::to_vec(&json!({"investigator": "i".repeat(200)})).unwrap(),
+            400,
+        ),
+        post(
+            "lease body not JSON",
+            "/v1/queues/audit/lease",
+            b"me".to_vec(),
+            400,
+        ),
+        post(
+            "lease on unknown queue",
+            "/v1/queues/nowhere/lease",
+            serde_json::to_vec(&json!({"investigator": "i"})).unwrap(),
+            404,
+        ),
+        post(
+            "release of unknown item",
+            "/v1/queues/audit/items/NOPE/release",
+            vec![],
+            404,
+        ),
+        post(
+            "model upload that is not a model",
+            "/v1/admin/model?role=challenger",
+            b"{}".to_vec(),
+            400,
+        ),
+        post(
+            "model upload with unknown role",
+            "/v1/admin/model?role=boss",
+            b"{}".to_vec(),
+            400,
+        ),
+        post(
+            "promotion without a challenger",
+            "/v1/admin/model/promote",
+            vec![],
+            404,
+        ),
+    ];
+    out.extend(posts);
+    out
+}
+
+/// Every request of the hostile corpus gets the expected 4xx problem body, nothing is stored,
+/// and the service goes on answering.
+#[tokio::test]
+async fn hostile_requests_get_problems_and_change_nothing() {
+    let dir = tempdir("hostile");
+    let svc = service(&dir);
+    let app = http::app(svc.clone(), settings());
+    let (status, _, _) = post_claim(&app, &claim("H-0")).await;
+    assert_eq!(status, StatusCode::CREATED);
+    let before = svc.store.tree_sizes();
+    let corpus = hostile_corpus();
+    assert!(corpus.len() >= 100, "corpus has {} cases", corpus.len());
+    println!("{} hostile cases", corpus.len());
+    let mut failures = Vec::new();
+    for h in &corpus {
+        let (status, ct, p) = call(
+            &app,
+            h.method.clone(),
+            &h.uri,
+            h.content_type,
+            h.body.clone(),
+        )
+        .await;
+        let ok = status.as_u16() == h.status
+            && ct == "application/problem+json"
+            && p["status"].as_u64() == Some(u64::from(h.status))
+            && !p["detail"].as_str().unwrap_or("").is_empty();
+        if !ok {
+            failures.push(format!("{}: got {status} {ct} {p}", h.name));
+        }
+    }
+    assert!(
+        failures.is_empty(),
+        "{} of {} cases failed:\n{}",
+        failures.len(),
+        corpus.len(),
+        failures.join("\n")
+    );
+    assert_eq!(
+        svc.store.tree_sizes(),
+        before,
+        "a refused request left a trace"
+    );
+    let (status, _, _) = call(&app, Method::GET, "/healthz", None, vec![]).await;
+    assert_eq!(status, StatusCode::OK);
+    let (status, _, _) = post_claim(&app, &claim("H-after")).await;
+    assert_eq!(status, StatusCode::CREATED, "still taking claims");
+}

@@ -1464,3 +1464,158 @@ async fn hostile_requests_get_problems_and_change_nothing() {
     let (status, _, _) = post_claim(&app, &claim("H-after")).await;
     assert_eq!(status, StatusCode::CREATED, "still taking claims");
 }
+
+/// Crash safety: the real binary on one sled folder, claims and outcomes posted from several
+/// connections at once, SIGKILL at a random moment, restart; every request that got a 2xx
+/// must be there, whole, after the restart. Ten cycles.
+#[test]
+fn acknowledged_writes_survive_sigkill() {
+    use std::collections::BTreeMap;
+    use std::sync::{Arc, Mutex};
+    let dir = tempdir("crash");
+    let config = dir.join("weir.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "[server]\nlisten = \"127.0.0.1:0\"\n[store]\npath = {:?}\n[paths]\nmodel = {:?}\nrules = {:?}\n",
+            dir.join("store"),
+            model_path(),
+            rules_path()
+        ),
+    )
+    .unwrap();
+    let seed = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .unwrap()
+        .as_nanos() as u64;
+    println!("crash test seed {seed}");
+    let mut rng = seed | 1;
+    let mut next = move || {
+        rng ^= rng << 13;
+        rng ^= rng >> 7;
+        rng ^= rng << 17;
+        rng
+    };
+    let rt = tokio::runtime::Runtime::new().unwrap();
+    // claim id -> acknowledged decision; claim id -> acknowledged outcome
+    let acked_claims: Arc<Mutex<BTreeMap<String, Value>>> = Arc::default();
+    let acked_outcomes: Arc<Mutex<BTreeMap<String, Value>>> = Arc::default();
+    let start = |config: &Path| {
+        let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_weir"))
+            .args(["serve", "--config", config.to_str().unwrap()])
+            .stdout(std::process::Stdio::piped())
+            .stderr(std::process::Stdio::null())
+            .spawn()
+            .unwrap();
+        let mut line = String::new();
+        let mut out = std::io::BufReader::new(child.stdout.take().unwrap());
+        std::io::BufRead::read_line(&mut out, &mut line).unwrap();
+        let addr: std::net::SocketAddr = line
+            .trim()
+            .rsplit("http://")
+            .next()
+            .unwrap()
+            .parse()
+            .unwrap();
+        (child, addr)
+    };
+    let verify = |addr: std::net::SocketAddr,
+                  claims: &BTreeMap<String, Value>,
+                  outcomes: &BTreeMap<String, Value>| {
+        rt.block_on(async {
+            for (id, d) in claims {
+                let r = weir::client::get(addr, &format!("/v1/claims/{id}"))
+                    .await
+                    .unwrap();
+                assert_eq!(r.status, StatusCode::OK, "acknowledged claim {id} lost");
+                let v = r.json().unwrap();
+                assert_eq!(
+                    v["decision"]["decided_at"], d["decided_at"],
+                    "{id}: decision changed"
+                );
+                assert_eq!(v["decision"]["queue"], d["queue"]);
+                assert!(
+                    v["features"].as_object().is_some_and(|f| !f.is_empty()),
+                    "{id}: audit record incomplete"
+                );
+                if let Some(o) = outcomes.get(id) {
+                    assert_eq!(
+                        v["outcome"]["outcome"], o["outcome"],
+                        "{id}: acknowledged outcome lost"
+                    );
+                    assert_eq!(v["outcome"]["revision"], o["revision"]);
+                }
+            }
+            // Nothing half-written: every stored claim reads back whole.
+            let export = weir::client::get(addr, "/v1/export/training")
+                .await
+                .unwrap();
+            for line in export.body.split(|&b| b == b'\n').filter(|l| !l.is_empty()) {
+                let v: Value = serde_json::from_slice(line).unwrap();
+                let id = v["claim_id"].as_str().unwrap();
+                let r = weir::client::get(addr, &format!("/v1/claims/{id}"))
+                    .await
+                    .unwrap();
+                assert_eq!(r.status, StatusCode::OK, "{id} listed but unreadable");
+            }
+        })
+    };
+    for cycle in 0..10u64 {
+        let (mut child, addr) = start(&config);
+        verify(
+            addr,
+            &acked_claims.lock().unwrap(),
+            &acked_outcomes.lock().unwrap(),
+        );
+        let kill_after = std::time::Duration::from_millis(50 + next() % 400);
+        rt.block_on(async {
+            let mut tasks = Vec::new();
+            for worker in 0..4u64 {
+                let claims = Arc::clone(&acked_claims);
+                let outcomes = Arc::clone(&acked_outcomes);
+                tasks.push(tokio::spawn(async move {
+                    for i in 0.. {
+                        let id = format!("K{cycle}-{worker}-{i}");
+                        let mut c = claim(&id);
+                        c["claimant_id"] = json!(format!("KC-{}", i % 7));
+                        c["parties"][0]["id"] = json!(format!("R-{}", i % 3));
+                        let Ok(r) = weir::client::post_json(addr, "/v1/claims", &c).await else { return };
+                        if r.status.is_success() {
+                            claims.lock().unwrap().insert(id.clone(), r.json().unwrap());
+                        }
+                        if i % 2 == 0 {
+                            let o = json!({"outcome": if i % 4 == 0 { "genuine" } else { "fraud_confirmed" },
+                                "adjudicated_on": "2025-05-01", "decided_by": "crash-test"});
+                            let Ok(r) = weir::client::post_json(addr, &format!("/v1/claims/{id}/outcome"), &o).await else { return };
+                            if r.status.is_success() {
+                                outcomes.lock().unwrap().insert(id.clone(), r.json().unwrap());
+                            }
+                        }
+                    }
+                }));
+            }
+            tokio::time::sleep(kill_after).await;
+            child.kill().unwrap(); // SIGKILL
+            for t in tasks {
+                let _ = t.await;
+            }
+        });
+        let _ = child.wait();
+    }
+    let (mut child, addr) = start(&config);
+    let claims = acked_claims.lock().unwrap().clone();
+    let outcomes = acked_outcomes.lock().unwrap().clone();
+    verify(addr, &claims, &outcomes);
+    println!(
+        "{} acknowledged claims and {} outcomes survived 10 SIGKILLs",
+        claims.len(),
+        outcomes.len()
+    );
+    assert!(
+        claims.len() > 50,
+        "too few writes to mean anything: {}",
+        claims.len()
+    );
+    child.kill().unwrap();
+    let _ = child.wait();
+}

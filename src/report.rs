@@ -121,6 +121,20 @@ fn empty_chart(out: &mut String, title: &str, why: &str) {
     );
 }
 
+/// Axes on the unit square with the diagonal drawn dashed (chance for ROC, perfect for
+/// calibration).
+fn unit_square(out: &mut String, xlabel: &str, ylabel: &str) -> Frame {
+    let f = Frame {
+        x0: 0.0,
+        x1: 1.0,
+        y0: 0.0,
+        y1: 1.0,
+    };
+    axes(out, &f, xlabel, ylabel, &[0.0, 0.5, 1.0]);
+    polyline(out, &f, &[(0.0, 0.0), (1.0, 1.0)], "#999", true);
+    f
+}
+
 fn roc_chart(out: &mut String, curve: &[RocPoint], auc: Option<f64>) {
     let title = "ROC curve";
     if auc.is_none() {
@@ -131,20 +145,7 @@ fn roc_chart(out: &mut String, curve: &[RocPoint], auc: Option<f64>) {
         title,
         "True positive rate against false positive rate of the champion's probability on adjudicated claims",
     );
-    let f = Frame {
-        x0: 0.0,
-        x1: 1.0,
-        y0: 0.0,
-        y1: 1.0,
-    };
-    axes(
-        out,
-        &f,
-        "false positive rate",
-        "true positive rate",
-        &[0.0, 0.5, 1.0],
-    );
-    polyline(out, &f, &[(0.0, 0.0), (1.0, 1.0)], "#999", true);
+    let f = unit_square(out, "false positive rate", "true positive rate");
     let pts: Vec<(f64, f64)> = curve.iter().map(|p| (p.fpr, p.tpr)).collect();
     polyline(out, &f, &pts, "#1b5e7a", false);
     out.push_str("</svg>");
@@ -319,20 +320,7 @@ fn calibration_chart(out: &mut String, bins: &[CalibrationBin]) {
         title,
         "Observed rate of referral-worthy claims against mean predicted probability, in ten bands of probability; the diagonal is perfect calibration",
     );
-    let f = Frame {
-        x0: 0.0,
-        x1: 1.0,
-        y0: 0.0,
-        y1: 1.0,
-    };
-    axes(
-        out,
-        &f,
-        "mean predicted probability",
-        "observed rate",
-        &[0.0, 0.5, 1.0],
-    );
-    polyline(out, &f, &[(0.0, 0.0), (1.0, 1.0)], "#999", true);
+    let f = unit_square(out, "mean predicted probability", "observed rate");
     let pts: Vec<(f64, f64)> = bins
         .iter()
         .map(|b| (b.mean_predicted, b.observed_rate))

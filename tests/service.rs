@@ -534,11 +534,8 @@ async fn operations_routes_and_openapi_match_the_router() {
     }
 }
 
-/// The real binary on port 0: serve, decide, stop with SIGTERM, start again on the same sled
-/// folder, and find the acknowledged claim with the same decision.
-#[test]
-fn real_server_keeps_acknowledged_claims_across_restart() {
-    let dir = tempdir("restart");
+/// A configuration for a real `weir serve` on a free port, on `dir`'s sled folder.
+fn server_config(dir: &Path) -> PathBuf {
     let config = dir.join("weir.toml");
     std::fs::write(
         &config,
@@ -550,25 +547,40 @@ fn real_server_keeps_acknowledged_claims_across_restart() {
         ),
     )
     .unwrap();
+    config
+}
+
+/// Start the real binary and read the address it prints.
+fn start_server(config: &Path) -> (std::process::Child, std::net::SocketAddr) {
+    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_weir"))
+        .args(["serve", "--config", config.to_str().unwrap()])
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .unwrap();
+    let mut line = String::new();
+    let mut out = std::io::BufReader::new(child.stdout.take().unwrap());
+    std::io::BufRead::read_line(&mut out, &mut line).unwrap();
+    let addr = line
+        .trim()
+        .rsplit("http://")
+        .next()
+        .unwrap()
+        .parse()
+        .unwrap_or_else(|_| panic!("no address in {line:?}"));
+    (child, addr)
+}
+
+/// The real binary on port 0: serve, decide, stop with SIGTERM, start again on the same sled
+/// folder, and find the acknowledged claim with the same decision.
+#[test]
+fn real_server_keeps_acknowledged_claims_across_restart() {
+    let dir = tempdir("restart");
+    let config = server_config(&dir);
     let rt = tokio::runtime::Runtime::new().unwrap();
     let mut first: Option<Value> = None;
     for round in 0..2 {
-        let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_weir"))
-            .args(["serve", "--config", config.to_str().unwrap()])
-            .stdout(std::process::Stdio::piped())
-            .stderr(std::process::Stdio::null())
-            .spawn()
-            .unwrap();
-        let mut line = String::new();
-        let mut out = std::io::BufReader::new(child.stdout.take().unwrap());
-        std::io::BufRead::read_line(&mut out, &mut line).unwrap();
-        let addr: std::net::SocketAddr = line
-            .trim()
-            .rsplit("http://")
-            .next()
-            .unwrap()
-            .parse()
-            .unwrap_or_else(|_| panic!("{line}"));
+        let (mut child, addr) = start_server(&config);
         rt.block_on(async {
             if round == 0 {
                 let r = weir::client::post_json(addr, "/v1/claims", &claim("R-1"))
@@ -1473,17 +1485,7 @@ fn acknowledged_writes_survive_sigkill() {
     use std::collections::BTreeMap;
     use std::sync::{Arc, Mutex};
     let dir = tempdir("crash");
-    let config = dir.join("weir.toml");
-    std::fs::write(
-        &config,
-        format!(
-            "[server]\nlisten = \"127.0.0.1:0\"\n[store]\npath = {:?}\n[paths]\nmodel = {:?}\nrules = {:?}\n",
-            dir.join("store"),
-            model_path(),
-            rules_path()
-        ),
-    )
-    .unwrap();
+    let config = server_config(&dir);
     let seed = std::time::SystemTime::now()
         .duration_since(std::time::UNIX_EPOCH)
         .unwrap()
@@ -1500,25 +1502,6 @@ fn acknowledged_writes_survive_sigkill() {
     // claim id -> acknowledged decision; claim id -> acknowledged outcome
     let acked_claims: Arc<Mutex<BTreeMap<String, Value>>> = Arc::default();
     let acked_outcomes: Arc<Mutex<BTreeMap<String, Value>>> = Arc::default();
-    let start = |config: &Path| {
-        let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_weir"))
-            .args(["serve", "--config", config.to_str().unwrap()])
-            .stdout(std::process::Stdio::piped())
-            .stderr(std::process::Stdio::null())
-            .spawn()
-            .unwrap();
-        let mut line = String::new();
-        let mut out = std::io::BufReader::new(child.stdout.take().unwrap());
-        std::io::BufRead::read_line(&mut out, &mut line).unwrap();
-        let addr: std::net::SocketAddr = line
-            .trim()
-            .rsplit("http://")
-            .next()
-            .unwrap()
-            .parse()
-            .unwrap();
-        (child, addr)
-    };
     let verify = |addr: std::net::SocketAddr,
                   claims: &BTreeMap<String, Value>,
                   outcomes: &BTreeMap<String, Value>| {
@@ -1561,7 +1544,7 @@ fn acknowledged_writes_survive_sigkill() {
         })
     };
     for cycle in 0..10u64 {
-        let (mut child, addr) = start(&config);
+        let (mut child, addr) = start_server(&config);
         verify(
             addr,
             &acked_claims.lock().unwrap(),
@@ -1602,7 +1585,7 @@ fn acknowledged_writes_survive_sigkill() {
         });
         let _ = child.wait();
     }
-    let (mut child, addr) = start(&config);
+    let (mut child, addr) = start_server(&config);
     let claims = acked_claims.lock().unwrap().clone();
     let outcomes = acked_outcomes.lock().unwrap().clone();
     verify(addr, &claims, &outcomes);

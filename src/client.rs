@@ -21,8 +21,61 @@ impl Reply {
     }
 }
 
+/// Where to send requests, and the API key to send them with.
+#[derive(Debug, Clone)]
+pub struct Api {
+    pub addr: SocketAddr,
+    pub key: Option<String>,
+}
+
+impl Api {
+    pub fn new(addr: SocketAddr) -> Api {
+        Api { addr, key: None }
+    }
+
+    pub fn with_key(&self, key: &str) -> Api {
+        Api {
+            addr: self.addr,
+            key: Some(key.to_string()),
+        }
+    }
+
+    pub async fn request(
+        &self,
+        method: Method,
+        path: &str,
+        content_type: Option<&str>,
+        body: Vec<u8>,
+    ) -> Result<Reply> {
+        request(
+            self.addr,
+            self.key.as_deref(),
+            method,
+            path,
+            content_type,
+            body,
+        )
+        .await
+    }
+
+    pub async fn get(&self, path: &str) -> Result<Reply> {
+        self.request(Method::GET, path, None, Vec::new()).await
+    }
+
+    pub async fn post_json(&self, path: &str, body: &serde_json::Value) -> Result<Reply> {
+        self.request(
+            Method::POST,
+            path,
+            Some("application/json"),
+            serde_json::to_vec(body)?,
+        )
+        .await
+    }
+}
+
 pub async fn request(
     addr: SocketAddr,
+    key: Option<&str>,
     method: Method,
     path: &str,
     content_type: Option<&str>,
@@ -42,6 +95,9 @@ pub async fn request(
     if let Some(ct) = content_type {
         req = req.header(header::CONTENT_TYPE, ct);
     }
+    if let Some(k) = key {
+        req = req.header(header::AUTHORIZATION, format!("Bearer {k}"));
+    }
     let resp = sender
         .send_request(req.body(Full::new(Bytes::from(body)))?)
         .await?;
@@ -58,19 +114,4 @@ pub async fn request(
         content_type,
         body,
     })
-}
-
-pub async fn get(addr: SocketAddr, path: &str) -> Result<Reply> {
-    request(addr, Method::GET, path, None, Vec::new()).await
-}
-
-pub async fn post_json(addr: SocketAddr, path: &str, body: &serde_json::Value) -> Result<Reply> {
-    request(
-        addr,
-        Method::POST,
-        path,
-        Some("application/json"),
-        serde_json::to_vec(body)?,
-    )
-    .await
 }

@@ -226,6 +226,47 @@ impl Default for Monitor {
     }
 }
 
+/// Who may call the API.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct AccessConfig {
+    /// TOML file of API keys (names, roles, SHA-256 of each key); `weir keys add` writes it.
+    pub key_file: std::path::PathBuf,
+    /// Serve without keys, every caller holding every role. Refused unless `server.listen` is
+    /// a loopback address: for trying weir out and for tests only.
+    pub unauthenticated: bool,
+}
+
+impl Default for AccessConfig {
+    fn default() -> Self {
+        AccessConfig {
+            key_file: "config/keys.toml".into(),
+            unauthenticated: false,
+        }
+    }
+}
+
+/// How long claims are kept.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct Retention {
+    /// Purge claims with no decision or outcome in this many days, with their history, audit
+    /// records, queue entries and outcomes; claims under legal hold are kept. 0 keeps
+    /// everything.
+    pub days: u32,
+    /// How often the service looks for claims past retention, in hours.
+    pub check_hours: u32,
+}
+
+impl Default for Retention {
+    fn default() -> Self {
+        Retention {
+            days: 0,
+            check_hours: 24,
+        }
+    }
+}
+
 pub const SEGMENTS: [&str; 3] = ["line", "region", "policy_age"];
 
 #[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
@@ -239,6 +280,8 @@ pub struct Config {
     pub routing: crate::rules::Routing,
     pub queues: Queues,
     pub monitor: Monitor,
+    pub access: AccessConfig,
+    pub retention: Retention,
 }
 
 /// Keys that are valid but absent from the serialised defaults (their default is "none").
@@ -404,6 +447,20 @@ impl Config {
                     SEGMENTS.join(", ")
                 ));
             }
+        }
+        if self.access.unauthenticated
+            && !sv
+                .listen
+                .parse::<std::net::SocketAddr>()
+                .is_ok_and(|a| a.ip().is_loopback())
+        {
+            p.push(format!(
+                "access.unauthenticated: only allowed when server.listen is a loopback address, not {:?}; give callers API keys (weir keys add)",
+                sv.listen
+            ));
+        }
+        if self.retention.check_hours == 0 {
+            p.push("retention.check_hours: at least 1".into());
         }
         if self.queues.lease_minutes == 0 {
             p.push("queues.lease_minutes: at least 1".into());

@@ -2,6 +2,7 @@
 //! its own. Generate claims, train, start the service on a local sled folder, replay the claims
 //! through the HTTP batch intake, and print what an investigator would see first.
 
+use crate::access::{Role, add_key};
 use crate::client;
 use crate::config::Config;
 use crate::rules::Queue;
@@ -46,6 +47,7 @@ pub async fn run(o: DemoOptions) -> Result<()> {
         c.paths.model = o.dir.join("model.json");
         c.paths.rules = o.dir.join("rules.toml");
         c.server.listen = o.listen.clone();
+        c.access.key_file = o.dir.join("keys.toml");
         c
     };
     let loaded = train::load(
@@ -74,6 +76,25 @@ pub async fn run(o: DemoOptions) -> Result<()> {
     if config.store.path.exists() {
         std::fs::remove_dir_all(&config.store.path)?;
     }
+    // One API key per role, made fresh each run. The key file holds only their hashes; the
+    // keys themselves go to a file in the demo folder so you can try the API by hand.
+    let _ = std::fs::remove_file(&config.access.key_file);
+    let mut keys = std::collections::BTreeMap::new();
+    for (name, role) in [
+        ("demo-claims-system", Role::ClaimsSystem),
+        ("demo-investigator", Role::Investigator),
+        ("demo-analyst", Role::Analyst),
+        ("demo-administrator", Role::Administrator),
+    ] {
+        keys.insert(role, add_key(&config.access.key_file, name, vec![role])?);
+    }
+    let key_list = o.dir.join("demo-keys.txt");
+    std::fs::write(
+        &key_list,
+        keys.iter()
+            .map(|(r, k)| format!("{}\t{k}\n", r.as_str()))
+            .collect::<String>(),
+    )?;
     let (svc, settings) = crate::server::build(&config)?;
     let (listener, addr) = crate::server::bind(&config.server.listen).await?;
     let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
@@ -81,9 +102,14 @@ pub async fn run(o: DemoOptions) -> Result<()> {
         let _ = stop_rx.await;
     }));
     println!(
-        "3. serving on http://{addr} with the sled store in {}",
-        config.store.path.display()
+        "3. serving on http://{addr} with the sled store in {}; one API key per role in {}",
+        config.store.path.display(),
+        key_list.display()
     );
+    let api = client::Api::new(addr);
+    let claims_system = api.with_key(&keys[&Role::ClaimsSystem]);
+    let investigator = api.with_key(&keys[&Role::Investigator]);
+    let analyst = api.with_key(&keys[&Role::Analyst]);
 
     // The intake schema has no outcome: strip it, as a claims system would never send one.
     let mut body = Vec::new();
@@ -92,14 +118,14 @@ pub async fn run(o: DemoOptions) -> Result<()> {
         body.push(b'\n');
     }
     let t0 = std::time::Instant::now();
-    let reply = client::request(
-        addr,
-        Method::POST,
-        "/v1/claims/batch",
-        Some("application/x-ndjson"),
-        body,
-    )
-    .await?;
+    let reply = claims_system
+        .request(
+            Method::POST,
+            "/v1/claims/batch",
+            Some("application/x-ndjson"),
+            body,
+        )
+        .await?;
     if reply.status != StatusCode::OK {
         bail!("batch intake answered {}", reply.status);
     }
@@ -122,7 +148,7 @@ pub async fn run(o: DemoOptions) -> Result<()> {
         println!("     {q:<12} {n:>6}");
     }
 
-    let queues = client::get(addr, "/v1/queues").await?.json()?;
+    let queues = investigator.get("/v1/queues").await?.json()?;
     println!("\n5. review queues (depth against daily capacity):");
     for q in queues["queues"].as_array().into_iter().flatten() {
         println!(
@@ -133,7 +159,8 @@ pub async fn run(o: DemoOptions) -> Result<()> {
         );
     }
     for q in Queue::WORKED {
-        let page = client::get(addr, &format!("/v1/queues/{}?limit=5", q.as_str()))
+        let page = investigator
+            .get(&format!("/v1/queues/{}?limit=5", q.as_str()))
             .await?
             .json()?;
         println!("\n   top of {}:", q.as_str());
@@ -171,13 +198,15 @@ pub async fn run(o: DemoOptions) -> Result<()> {
             "adjudicated_on": (d.claim.reported_at.date_naive() + chrono::Days::new(30)).to_string(),
             "decided_by": "demo-panel",
         });
-        let r = client::post_json(addr, &format!("/v1/claims/{id}/outcome"), &body).await?;
+        let r = investigator
+            .post_json(&format!("/v1/claims/{id}/outcome"), &body)
+            .await?;
         if !r.status.is_success() {
             bail!("outcome for {id} answered {}", r.status);
         }
         posted += 1;
     }
-    let q = client::get(addr, "/v1/monitor/quality").await?.json()?;
+    let q = analyst.get("/v1/monitor/quality").await?.json()?;
     let p = &q["precision"];
     println!(
         "\n6. posted {posted} adjudicated outcomes for the referred and audited claims; precision of referrals {:.1}% (95% interval {:.1}% to {:.1}%, {} adjudicated referrals)",
@@ -200,7 +229,7 @@ pub async fn run(o: DemoOptions) -> Result<()> {
         );
     }
     println!("   {}", a["note"].as_str().unwrap_or(""));
-    let html = client::get(addr, "/v1/report").await?;
+    let html = analyst.get("/v1/report").await?;
     let report = o.dir.join("report.html");
     std::fs::write(&report, &html.body)?;
     println!("7. monitoring report written to {}", report.display());
@@ -210,7 +239,10 @@ pub async fn run(o: DemoOptions) -> Result<()> {
     );
 
     if o.keep_serving {
-        println!("\nserving on http://{addr} until Ctrl-C (try GET /v1/queues)");
+        println!(
+            "\nserving on http://{addr} until Ctrl-C; try\n  curl -H \"Authorization: Bearer $(grep investigator {} | cut -f2)\" http://{addr}/v1/queues",
+            key_list.display()
+        );
         crate::server::shutdown_signal().await;
     }
     let _ = stop_tx.send(());

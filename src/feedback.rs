@@ -81,6 +81,9 @@ pub struct OutcomeRecord {
     /// The claim revision the outcome was recorded against.
     pub claim_revision: u32,
     pub recorded_at: String,
+    /// Name of the API key that posted it.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub posted_by: Option<String>,
     #[serde(flatten)]
     pub report: OutcomeReport,
 }

@@ -2,13 +2,14 @@
 //! result. Every error is an RFC 9457 problem+json body; 4xx bodies name the field, 5xx bodies
 //! hide internals (the cause is logged with the request id).
 
+use crate::access::{Access, AuthError, Principal, Role};
 use crate::claim::{Claim, ClaimError, FieldError};
 use crate::feedback::{OutcomeRecord, OutcomeReport};
 use crate::rules::Queue;
 use crate::service::{Decision, Service, ServiceError};
 use crate::store::IntakeStatus;
 use axum::body::{Body, Bytes};
-use axum::extract::{Path, Query, Request, State};
+use axum::extract::{Extension, MatchedPath, Path, Query, Request, State};
 use axum::http::{HeaderMap, HeaderValue, StatusCode, header};
 use axum::middleware::{self, Next};
 use axum::response::{IntoResponse, Response};
@@ -32,6 +33,62 @@ pub struct HttpSettings {
     pub batch_limit_bytes: usize,
     pub batch_line_bytes: usize,
     pub capacities: [(Queue, f64); 3],
+    pub access: Arc<Access>,
+    /// `retention.days` (0: purges are off).
+    pub retention_days: u32,
+    pub retention_check_hours: u32,
+}
+
+/// Which roles may call each route (method, path as routed). A route missing here is
+/// administrator-only, so forgetting an entry fails closed; a test checks that every
+/// documented operation has its entry. Operations routes (/healthz, /readyz, /metrics,
+/// /v1/openapi.json) are open: they carry no claim data.
+pub const ROUTE_ROLES: &[(&str, &str, &[Role])] = &[
+    ("POST", "/v1/claims", &[Role::ClaimsSystem]),
+    ("POST", "/v1/claims/batch", &[Role::ClaimsSystem]),
+    (
+        "GET",
+        "/v1/claims/{claim_id}",
+        &[Role::ClaimsSystem, Role::Investigator, Role::Analyst],
+    ),
+    (
+        "POST",
+        "/v1/claims/{claim_id}/outcome",
+        &[Role::Investigator],
+    ),
+    ("POST", "/v1/claims/{claim_id}/hold", &[Role::Administrator]),
+    (
+        "GET",
+        "/v1/claimants/{claimant_id}/records",
+        &[Role::Administrator],
+    ),
+    ("GET", "/v1/queues", &[Role::Investigator]),
+    ("GET", "/v1/queues/{queue}", &[Role::Investigator]),
+    ("POST", "/v1/queues/{queue}/lease", &[Role::Investigator]),
+    (
+        "POST",
+        "/v1/queues/{queue}/items/{claim_id}/release",
+        &[Role::Investigator],
+    ),
+    ("GET", "/v1/monitor/quality", &[Role::Analyst]),
+    ("GET", "/v1/monitor/drift", &[Role::Analyst]),
+    ("GET", "/v1/monitor/fairness", &[Role::Analyst]),
+    ("GET", "/v1/monitor/compare", &[Role::Analyst]),
+    ("GET", "/v1/export/training", &[Role::Analyst]),
+    ("GET", "/v1/report", &[Role::Analyst]),
+    ("POST", "/v1/admin/model", &[Role::Administrator]),
+    ("POST", "/v1/admin/model/promote", &[Role::Administrator]),
+    ("POST", "/v1/admin/rules", &[Role::Administrator]),
+    ("POST", "/v1/admin/purge", &[Role::Administrator]),
+];
+
+/// The roles allowed on a route; administrator-only when the route is not in the table.
+pub fn required_roles(method: &str, path: &str) -> &'static [Role] {
+    let method = if method == "HEAD" { "GET" } else { method };
+    ROUTE_ROLES
+        .iter()
+        .find(|(m, p, _)| *m == method && *p == path)
+        .map_or(&[Role::Administrator], |(_, _, r)| *r)
 }
 
 #[derive(Clone)]
@@ -58,6 +115,16 @@ pub enum AppError {
     MediaType { expected: &'static str },
     #[error("method not allowed on this route")]
     Method,
+    #[error("{0}")]
+    Unauthenticated(AuthError),
+    #[error("this route needs one of the roles {needed}; the key {name:?} has {has}")]
+    Forbidden {
+        name: String,
+        needed: String,
+        has: String,
+    },
+    #[error("{0}")]
+    Conflict(String),
     #[error("the service is at its concurrency limit; retry shortly")]
     Overloaded,
     #[error("the request took longer than the service allows; retry shortly")]
@@ -114,6 +181,9 @@ impl AppError {
             AppError::TooLarge { .. } => (StatusCode::PAYLOAD_TOO_LARGE, "too-large"),
             AppError::MediaType { .. } => (StatusCode::UNSUPPORTED_MEDIA_TYPE, "media-type"),
             AppError::Method => (StatusCode::METHOD_NOT_ALLOWED, "method"),
+            AppError::Unauthenticated(_) => (StatusCode::UNAUTHORIZED, "unauthenticated"),
+            AppError::Forbidden { .. } => (StatusCode::FORBIDDEN, "forbidden"),
+            AppError::Conflict(_) => (StatusCode::CONFLICT, "conflict"),
             AppError::Overloaded => (StatusCode::SERVICE_UNAVAILABLE, "overloaded"),
             AppError::TimedOut => (StatusCode::SERVICE_UNAVAILABLE, "timed-out"),
             AppError::Internal(_) => (StatusCode::INTERNAL_SERVER_ERROR, "internal"),
@@ -125,6 +195,7 @@ impl IntoResponse for AppError {
     fn into_response(self) -> Response {
         let (status, kind) = self.status_and_kind();
         let retry = matches!(self, AppError::Overloaded | AppError::TimedOut);
+        let challenge = matches!(self, AppError::Unauthenticated(_));
         let (detail, errors) = match self {
             AppError::NotJson(e) => (e.to_string(), e.field_errors()),
             AppError::InvalidClaim(errs) => (
@@ -145,6 +216,12 @@ impl IntoResponse for AppError {
         if retry {
             r.headers_mut()
                 .insert(header::RETRY_AFTER, HeaderValue::from_static("1"));
+        }
+        if challenge {
+            r.headers_mut().insert(
+                header::WWW_AUTHENTICATE,
+                HeaderValue::from_static("Bearer realm=\"weir\""),
+            );
         }
         r
     }
@@ -202,12 +279,21 @@ pub fn parse_claim(bytes: &[u8]) -> Result<Claim, AppError> {
     })
 }
 
-async fn post_claim(State(st): State<AppState>, headers: HeaderMap, body: Body) -> Response {
+async fn post_claim(
+    State(st): State<AppState>,
+    Extension(who): Extension<Principal>,
+    headers: HeaderMap,
+    body: Body,
+) -> Response {
     let result = async {
         require_type(&headers, "application/json")?;
         let bytes = read_body(body, st.settings.body_limit_bytes).await?;
         let claim = parse_claim(&bytes)?;
-        Ok::<Decision, AppError>(st.svc.intake(claim, chrono::Utc::now()).await?)
+        Ok::<Decision, AppError>(
+            st.svc
+                .intake_as(claim, chrono::Utc::now(), Some(&who.name))
+                .await?,
+        )
     }
     .await;
     match result {
@@ -235,7 +321,12 @@ const BATCH_CHUNK: usize = 256;
 /// line number). Lines are decided in order; output for a chunk of lines is sent only once
 /// those decisions are on disk. A line over the line limit, or a body over the batch limit,
 /// is reported and ends the batch.
-async fn post_batch(State(st): State<AppState>, headers: HeaderMap, body: Body) -> Response {
+async fn post_batch(
+    State(st): State<AppState>,
+    Extension(who): Extension<Principal>,
+    headers: HeaderMap,
+    body: Body,
+) -> Response {
     if let Err(e) = require_type(&headers, "application/x-ndjson") {
         st.svc
             .metrics
@@ -285,7 +376,7 @@ async fn post_batch(State(st): State<AppState>, headers: HeaderMap, body: Body) 
                 let line = buf[start..start + pos].to_vec();
                 start += pos + 1;
                 line_no += 1;
-                handle_line(&st, &line, line_no, &mut pending);
+                handle_line(&st, &who.name, &line, line_no, &mut pending);
             }
             buf.drain(..start);
             if buf.len() > s.batch_line_bytes && !stop {
@@ -300,7 +391,7 @@ async fn post_batch(State(st): State<AppState>, headers: HeaderMap, body: Body) 
             if (at_end || stop) && !buf.is_empty() {
                 let line = std::mem::take(&mut buf);
                 line_no += 1;
-                handle_line(&st, &line, line_no, &mut pending);
+                handle_line(&st, &who.name, &line, line_no, &mut pending);
             }
             if pending.len() >= BATCH_CHUNK || at_end || stop {
                 st.svc.store.flusher.durable().await;
@@ -344,12 +435,18 @@ fn tokio_stream_from(
     futures_util::stream::poll_fn(move |cx| rx.poll_recv(cx))
 }
 
-fn handle_line(st: &AppState, line: &[u8], line_no: usize, pending: &mut Vec<serde_json::Value>) {
+fn handle_line(
+    st: &AppState,
+    who: &str,
+    line: &[u8],
+    line_no: usize,
+    pending: &mut Vec<serde_json::Value>,
+) {
     if line.iter().all(u8::is_ascii_whitespace) {
         return;
     }
     match parse_claim(line) {
-        Ok(claim) => match st.svc.decide(claim, chrono::Utc::now()) {
+        Ok(claim) => match st.svc.decide_as(claim, chrono::Utc::now(), Some(who)) {
             Ok((rec, status)) => {
                 let mut v =
                     serde_json::to_value(Decision::from_record(&rec, status)).unwrap_or_default();
@@ -412,6 +509,7 @@ struct Linked {
 
 async fn get_claim(
     State(st): State<AppState>,
+    Extension(who): Extension<Principal>,
     Path(id): Path<String>,
 ) -> Result<Response, AppError> {
     check_id("claim_id", &id)?;
@@ -419,6 +517,18 @@ async fn get_claim(
     let Some(last) = revs.last() else {
         return Err(AppError::NotFound { what: "claim", id });
     };
+    // A claims system sees only the decision on a claim it filed itself; anyone else's claim
+    // is "not found" to it, so that ids of other systems' claims cannot be probed.
+    if !who.has_any(&[Role::Investigator, Role::Analyst]) {
+        if last.submitted_by.as_deref() != Some(who.name.as_str()) {
+            return Err(AppError::NotFound { what: "claim", id });
+        }
+        return Ok(Json(json!({
+            "claim_id": id,
+            "decision": Decision::from_record(last, IntakeStatus::New),
+        }))
+        .into_response());
+    }
     let linked = st
         .svc
         .store
@@ -515,28 +625,58 @@ async fn list_queue(
     })))
 }
 
+/// Read a JSON request body: content type, size limit, strict parse (duplicate keys refused).
+async fn json_body(
+    headers: &HeaderMap,
+    body: Body,
+    limit: usize,
+) -> Result<serde_json::Value, AppError> {
+    require_type(headers, "application/json")?;
+    let bytes = read_body(body, limit).await?;
+    crate::claim::strict_json(&bytes).map_err(|e| {
+        AppError::NotJson(ClaimError::NotJson {
+            line: e.line(),
+            column: e.column(),
+            message: e.to_string(),
+        })
+    })
+}
+
+fn field_error(field: &str, problem: impl Into<String>) -> AppError {
+    AppError::BadRequest(vec![FieldError {
+        field: field.into(),
+        problem: problem.into(),
+    }])
+}
+
+/// Lease the next item. With API keys the holder is the caller's key name (a body naming
+/// someone else is refused); in open mode the body must name the investigator.
 async fn lease(
     State(st): State<AppState>,
+    Extension(who): Extension<Principal>,
     Path(name): Path<String>,
     headers: HeaderMap,
     body: Body,
 ) -> Result<Response, AppError> {
     let queue = queue_param(&name)?;
-    require_type(&headers, "application/json")?;
-    let bytes = read_body(body, st.settings.body_limit_bytes).await?;
-    let v = crate::claim::strict_json(&bytes).map_err(|e| {
-        AppError::BadRequest(vec![FieldError {
-            field: String::new(),
-            problem: format!("not valid JSON: {e}"),
-        }])
-    })?;
-    let holder = match v.get("investigator").and_then(|x| x.as_str()) {
-        Some(h) if check_id("investigator", h).is_ok() => h.to_string(),
+    let v = json_body(&headers, body, st.settings.body_limit_bytes).await?;
+    let named = v.get("investigator");
+    let holder = match (named, st.settings.access.is_open()) {
+        (Some(serde_json::Value::String(h)), _) if check_id("investigator", h).is_ok() => {
+            if !st.settings.access.is_open() && *h != who.name {
+                return Err(field_error(
+                    "investigator",
+                    "a key leases for itself: leave this out or give the key's own name",
+                ));
+            }
+            h.clone()
+        }
+        (None, false) => who.name.clone(),
         _ => {
-            return Err(AppError::BadRequest(vec![FieldError {
-                field: "investigator".into(),
-                problem: "required: the id of the investigator taking the item".into(),
-            }]));
+            return Err(field_error(
+                "investigator",
+                "required: the id of the investigator taking the item",
+            ));
         }
     };
     match st.svc.lease(queue, &holder, chrono::Utc::now()).await? {
@@ -563,24 +703,17 @@ async fn release(
 
 async fn post_outcome(
     State(st): State<AppState>,
+    Extension(who): Extension<Principal>,
     Path(claim_id): Path<String>,
     headers: HeaderMap,
     body: Body,
 ) -> Result<Response, AppError> {
     check_id("claim_id", &claim_id)?;
-    require_type(&headers, "application/json")?;
-    let bytes = read_body(body, st.settings.body_limit_bytes).await?;
-    let v = crate::claim::strict_json(&bytes).map_err(|e| {
-        AppError::NotJson(ClaimError::NotJson {
-            line: e.line(),
-            column: e.column(),
-            message: e.to_string(),
-        })
-    })?;
+    let v = json_body(&headers, body, st.settings.body_limit_bytes).await?;
     let report = OutcomeReport::from_value(&v).map_err(AppError::BadRequest)?;
     match st
         .svc
-        .record_outcome(&claim_id, report, chrono::Utc::now())
+        .record_outcome_as(&claim_id, report, chrono::Utc::now(), Some(&who.name))
         .await?
     {
         None => Err(AppError::NotFound {
@@ -724,6 +857,123 @@ async fn admin_promote(State(st): State<AppState>) -> Result<Response, AppError>
     }
 }
 
+/// Set or lift a legal hold: `{"hold": true, "reason": "..."}` or `{"hold": false}`.
+async fn set_hold(
+    State(st): State<AppState>,
+    Extension(who): Extension<Principal>,
+    Path(claim_id): Path<String>,
+    headers: HeaderMap,
+    body: Body,
+) -> Result<Response, AppError> {
+    check_id("claim_id", &claim_id)?;
+    let v = json_body(&headers, body, st.settings.body_limit_bytes).await?;
+    let mut errors = Vec::new();
+    if let Some(obj) = v.as_object() {
+        for k in obj
+            .keys()
+            .filter(|k| !["hold", "reason"].contains(&k.as_str()))
+        {
+            errors.push(FieldError {
+                field: k.clone(),
+                problem: "unknown field".into(),
+            });
+        }
+    } else {
+        errors.push(FieldError {
+            field: String::new(),
+            problem: "expected a JSON object".into(),
+        });
+    }
+    let hold = v.get("hold").and_then(|h| h.as_bool());
+    if hold.is_none() {
+        errors.push(FieldError {
+            field: "hold".into(),
+            problem: "required: true to set a legal hold, false to lift it".into(),
+        });
+    }
+    let reason = v
+        .get("reason")
+        .and_then(|r| r.as_str())
+        .unwrap_or("")
+        .trim();
+    if hold == Some(true) && (reason.is_empty() || reason.len() > 1000) {
+        errors.push(FieldError {
+            field: "reason".into(),
+            problem:
+                "required when setting a hold: 1 to 1000 characters (a matter or case reference)"
+                    .into(),
+        });
+    }
+    if !errors.is_empty() {
+        return Err(AppError::BadRequest(errors));
+    }
+    let record = (hold == Some(true)).then(|| crate::store::Hold {
+        claim_id: claim_id.clone(),
+        reason: reason.to_string(),
+        set_at: chrono::Utc::now().to_rfc3339(),
+        set_by: who.name.clone(),
+    });
+    if !st.svc.set_hold(&claim_id, record.clone()).await? {
+        return Err(AppError::NotFound {
+            what: "claim",
+            id: claim_id,
+        });
+    }
+    tracing::info!(claim_id = %claim_id, hold = record.is_some(), "legal hold changed");
+    Ok(Json(json!({"claim_id": claim_id, "hold": record})).into_response())
+}
+
+/// Everything held about one person: claims naming the id as claimant or as any party, with
+/// every revision, outcome and hold (for a subject access request).
+async fn claimant_records(
+    State(st): State<AppState>,
+    Path(person): Path<String>,
+) -> Result<Response, AppError> {
+    check_id("claimant_id", &person)?;
+    let store = st.svc.store.clone();
+    let records = tokio::task::spawn_blocking(move || store.person_records(&person))
+        .await
+        .map_err(|e| AppError::Internal(e.to_string()))?
+        .map_err(ServiceError::from)?;
+    Ok(Json(records).into_response())
+}
+
+/// Replace the rule set (the request body is a rule file) without a restart.
+async fn admin_rules(
+    State(st): State<AppState>,
+    headers: HeaderMap,
+    body: Body,
+) -> Result<Response, AppError> {
+    require_type(&headers, "application/toml")?;
+    let bytes = read_body(body, st.settings.body_limit_bytes).await?;
+    let text =
+        std::str::from_utf8(&bytes).map_err(|_| field_error("", "the rule file is not UTF-8"))?;
+    let rules = crate::rules::RuleSet::from_toml(text, "request body")
+        .map_err(|e| field_error("", e.to_string()))?;
+    let version = rules.version.clone();
+    let n = rules.rules.len();
+    st.svc.load_rules(rules);
+    tracing::info!(%version, rules = n, "rules loaded");
+    Ok(Json(json!({"loaded": version, "rules": n})).into_response())
+}
+
+/// Run a retention purge now (the service also runs one every `retention.check_hours`).
+async fn admin_purge(State(st): State<AppState>) -> Result<Response, AppError> {
+    let days = st.settings.retention_days;
+    if days == 0 {
+        return Err(AppError::Conflict(
+            "retention.days is 0 (keep everything): there is nothing to purge".into(),
+        ));
+    }
+    let report = st.svc.purge(days, chrono::Utc::now()).await?;
+    tracing::info!(
+        purged = report.purged_claims,
+        kept_on_hold = report.kept_on_hold,
+        "retention purge"
+    );
+    Ok(Json(json!({"retention_days": days, "report": report})).into_response())
+}
+
 async fn monitor_compare(State(st): State<AppState>) -> Result<Response, AppError> {
     Ok(Json(st.svc.compare()?).into_response())
 }
@@ -797,6 +1047,52 @@ async fn method_not_allowed() -> AppError {
     AppError::Method
 }
 
+/// Access control for every API route: authenticate the key, check the route's roles, and
+/// hand the [`Principal`] to the handler. Runs after routing, so it knows the route pattern.
+async fn authorise(
+    State(st): State<AppState>,
+    matched: Option<MatchedPath>,
+    mut req: Request,
+    next: Next,
+) -> Response {
+    let path = matched.as_ref().map_or("", |m| m.as_str());
+    let needed = required_roles(req.method().as_str(), path);
+    let header_value = req
+        .headers()
+        .get(header::AUTHORIZATION)
+        .and_then(|v| v.to_str().ok());
+    let refused = |reason: &str| {
+        st.svc
+            .metrics
+            .auth_refused
+            .with_label_values(&[reason])
+            .inc();
+    };
+    let principal = match st.settings.access.authenticate(header_value) {
+        Ok(p) => p,
+        Err(e) => {
+            refused(match e {
+                AuthError::Missing => "missing_key",
+                AuthError::Unknown => "unknown_key",
+            });
+            return AppError::Unauthenticated(e).into_response();
+        }
+    };
+    tracing::Span::current().record("caller", principal.name.as_str());
+    if !principal.has_any(needed) {
+        refused("role");
+        let list = |rs: &[Role]| rs.iter().map(|r| r.as_str()).collect::<Vec<_>>().join(", ");
+        return AppError::Forbidden {
+            name: principal.name.clone(),
+            needed: list(needed),
+            has: list(&principal.roles),
+        }
+        .into_response();
+    }
+    req.extensions_mut().insert(principal);
+    next.run(req).await
+}
+
 static REQUEST_SEQ: AtomicU64 = AtomicU64::new(0);
 
 /// Request id: the caller's `x-request-id` when it is a sane token, else a new one; put on the
@@ -821,7 +1117,13 @@ async fn request_id(State(st): State<AppState>, mut req: Request, next: Next) ->
     let method = req.method().clone();
     // Paths carry ids (claim, queue) but never claim content.
     let path: String = req.uri().path().chars().take(200).collect();
-    let span = tracing::info_span!("request", request_id = %id, %method, %path);
+    let span = tracing::info_span!(
+        "request",
+        request_id = %id,
+        %method,
+        %path,
+        caller = tracing::field::Empty
+    );
     let t0 = std::time::Instant::now();
     let mut resp = {
         use tracing::Instrument;
@@ -884,6 +1186,11 @@ pub fn app(svc: Service, settings: HttpSettings) -> Router {
         .route("/v1/queues/{queue}", get(list_queue))
         .route("/v1/queues/{queue}/lease", post(lease))
         .route("/v1/queues/{queue}/items/{claim_id}/release", post(release))
+        .route("/v1/claims/{claim_id}/hold", post(set_hold))
+        .route("/v1/claimants/{claimant_id}/records", get(claimant_records))
+        .route("/v1/admin/rules", post(admin_rules))
+        .route("/v1/admin/purge", post(admin_purge))
+        .route_layer(middleware::from_fn_with_state(state.clone(), authorise))
         .layer(
             ServiceBuilder::new()
                 .layer(HandleErrorLayer::new(overload))
@@ -895,6 +1202,7 @@ pub fn app(svc: Service, settings: HttpSettings) -> Router {
     // takes a place under the same concurrency limit.
     let batch = Router::new()
         .route("/v1/claims/batch", post(post_batch))
+        .route_layer(middleware::from_fn_with_state(state.clone(), authorise))
         .layer(
             ServiceBuilder::new()
                 .layer(HandleErrorLayer::new(overload))

@@ -30,6 +30,7 @@
 //! The scoring core (`claim` → `features` → `model` + `outliers` → `rules`) is pure: no I/O, no
 //! clock. The service and the training command both call it.
 
+pub mod access;
 pub mod claim;
 pub mod cli;
 pub mod client;

@@ -20,6 +20,22 @@ struct Cli {
 }
 
 #[derive(Subcommand)]
+enum KeysAction {
+    /// Make a new random key with the given roles, append its hash to the key file (created
+    /// when missing) and print the key. It is shown only this once.
+    Add {
+        #[arg(long, default_value = "config/keys.toml")]
+        file: PathBuf,
+        /// The key's name: what logs and audit records show (e.g. the investigator's id).
+        #[arg(long)]
+        name: String,
+        /// claims_system, investigator, analyst or administrator; repeat for several.
+        #[arg(long = "role", required = true)]
+        roles: Vec<String>,
+    },
+}
+
+#[derive(Subcommand)]
 enum Command {
     /// Run the whole loop on the invented demo scenario: generate claims, train, serve, replay
     /// the claims through the HTTP intake, print the top of each review queue.
@@ -46,6 +62,16 @@ enum Command {
         config: Option<PathBuf>,
         #[arg(long)]
         out: PathBuf,
+        /// Instead of the training file, write everything held about this person (claims
+        /// naming the id as claimant or as any party, every revision, outcome and hold) as
+        /// one JSON document: the answer to a subject access request.
+        #[arg(long)]
+        claimant: Option<String>,
+    },
+    /// API keys: `weir keys add` makes a key, prints it once and stores only its hash.
+    Keys {
+        #[command(subcommand)]
+        action: KeysAction,
     },
     /// Write the self-contained HTML monitoring report of a (stopped) store to DIR/report.html.
     /// While the service runs, GET /v1/report gives the same page.
@@ -144,7 +170,54 @@ fn run(cli: Cli) -> Result<()> {
             keep_serving,
             listen,
         })),
-        Command::Export { config, out } => {
+        Command::Keys {
+            action: KeysAction::Add { file, name, roles },
+        } => {
+            let mut parsed = Vec::new();
+            for r in &roles {
+                parsed.push(weir::access::Role::parse(r).with_context(|| {
+                    format!(
+                        "unknown role {r:?}; roles: claims_system, investigator, analyst, administrator"
+                    )
+                })?);
+            }
+            let key = weir::access::add_key(&file, &name, parsed)?;
+            eprintln!(
+                "added key {name:?} ({}) to {}; its hash is stored, the key is not. Keep it now:",
+                roles.join(", "),
+                file.display()
+            );
+            println!("{key}");
+            Ok(())
+        }
+        Command::Export {
+            config,
+            out,
+            claimant: Some(person),
+        } => {
+            let config = Config::load(config.as_deref())?;
+            let store = weir::store::Store::open(&config.store.path, config.store.cache_mb << 20)
+                .with_context(|| {
+                    format!(
+                        "cannot open the store {} (is weir serve running on it? use GET /v1/claimants/ID/records then)",
+                        config.store.path.display()
+                    )
+                })?;
+            let records = store.person_records(&person)?;
+            std::fs::write(&out, serde_json::to_string_pretty(&records)?)
+                .with_context(|| format!("cannot write {}", out.display()))?;
+            println!(
+                "wrote {} claim(s) naming {person:?} to {}",
+                records.claims.len(),
+                out.display()
+            );
+            Ok(())
+        }
+        Command::Export {
+            config,
+            out,
+            claimant: None,
+        } => {
             let config = Config::load(config.as_deref())?;
             let store = weir::store::Store::open(&config.store.path, config.store.cache_mb << 20)
                 .with_context(|| {
@@ -168,7 +241,7 @@ fn run(cli: Cli) -> Result<()> {
         }
         Command::Report { config, out } => {
             let config = Config::load(config.as_deref())?;
-            let (svc, _) = weir::server::build(&config)?;
+            let svc = weir::server::build_service(&config)?;
             let capacity = config.queues.investigate_capacity + config.queues.desk_check_capacity;
             let data = svc.report_data(chrono::Utc::now(), capacity)?;
             std::fs::create_dir_all(&out)

@@ -1,6 +1,7 @@
 //! `weir serve`: load configuration, open the store, load the model and rules, serve until
 //! SIGTERM or Ctrl-C, finish in-flight requests, flush the store.
 
+use crate::access::Access;
 use crate::config::Config;
 use crate::http::{self, HttpSettings};
 use crate::model::{Model, ModelArtifact};
@@ -12,6 +13,29 @@ use std::net::SocketAddr;
 
 /// Everything loaded and checked, ready to bind. Fails with every reason it can find.
 pub fn build(config: &Config) -> Result<(Service, HttpSettings)> {
+    let access = load_access(config)?;
+    let svc = build_service(config)?;
+    let settings = HttpSettings {
+        body_limit_bytes: config.server.body_limit_bytes,
+        concurrency_limit: config.server.concurrency_limit,
+        request_timeout: std::time::Duration::from_secs(config.server.request_timeout_seconds),
+        batch_limit_bytes: config.server.batch_limit_bytes,
+        batch_line_bytes: config.server.batch_line_bytes,
+        capacities: [
+            (Queue::Investigate, config.queues.investigate_capacity),
+            (Queue::DeskCheck, config.queues.desk_check_capacity),
+            (Queue::Audit, config.queues.audit_capacity),
+        ],
+        access: std::sync::Arc::new(access),
+        retention_days: config.retention.days,
+        retention_check_hours: config.retention.check_hours,
+    };
+    Ok((svc, settings))
+}
+
+/// The store, model and rules of a configuration (no HTTP settings, no keys: for offline
+/// commands on a stopped store).
+pub fn build_service(config: &Config) -> Result<Service> {
     let artifact = ModelArtifact::read(&config.paths.model)
         .with_context(|| format!("model {}", config.paths.model.display()))?;
     let model =
@@ -27,19 +51,36 @@ pub fn build(config: &Config) -> Result<(Service, HttpSettings)> {
         i64::try_from(config.queues.lease_minutes * 60).unwrap_or(i64::MAX),
     )
     .with_monitor(config.monitor.clone());
-    let settings = HttpSettings {
-        body_limit_bytes: config.server.body_limit_bytes,
-        concurrency_limit: config.server.concurrency_limit,
-        request_timeout: std::time::Duration::from_secs(config.server.request_timeout_seconds),
-        batch_limit_bytes: config.server.batch_limit_bytes,
-        batch_line_bytes: config.server.batch_line_bytes,
-        capacities: [
-            (Queue::Investigate, config.queues.investigate_capacity),
-            (Queue::DeskCheck, config.queues.desk_check_capacity),
-            (Queue::Audit, config.queues.audit_capacity),
-        ],
+    Ok(svc)
+}
+
+/// The API keys in force: the key file, or open mode when configured (loopback only, checked
+/// by the configuration).
+pub fn load_access(config: &Config) -> Result<Access> {
+    let access = if config.access.unauthenticated {
+        tracing::warn!(
+            "access.unauthenticated is set: every caller holds every role (loopback only)"
+        );
+        Access::Open
+    } else {
+        let path = &config.access.key_file;
+        if !path.exists() {
+            anyhow::bail!(
+                "no API key file at {}: create keys with\n  weir keys add --file {} --name NAME --role ROLE\n(roles: claims_system, investigator, analyst, administrator), or set access.unauthenticated = true to try weir on a loopback address",
+                path.display(),
+                path.display()
+            );
+        }
+        let a = Access::read(path)?;
+        if matches!(&a, Access::Keys(k) if k.is_empty()) {
+            anyhow::bail!(
+                "the key file {} holds no keys: nobody could call the API",
+                path.display()
+            );
+        }
+        a
     };
-    Ok((svc, settings))
+    Ok(access)
 }
 
 /// Serve on an already bound listener until `shutdown` resolves.
@@ -65,6 +106,25 @@ pub async fn run(
             tokio::time::sleep(every).await;
         }
     });
+    if settings.retention_days > 0 {
+        let purger = svc.clone();
+        let days = settings.retention_days;
+        let every =
+            std::time::Duration::from_secs(u64::from(settings.retention_check_hours) * 3600);
+        tokio::spawn(async move {
+            loop {
+                match purger.purge(days, chrono::Utc::now()).await {
+                    Ok(r) => tracing::info!(
+                        purged = r.purged_claims,
+                        kept_on_hold = r.kept_on_hold,
+                        "retention purge"
+                    ),
+                    Err(e) => tracing::error!(error = %e, "retention purge failed"),
+                }
+                tokio::time::sleep(every).await;
+            }
+        });
+    }
     let app = http::app(svc, settings);
     axum::serve(listener, app)
         .with_graceful_shutdown(shutdown)

@@ -191,6 +191,14 @@ impl Service {
             .unwrap_or_else(|p| Arc::clone(&p.into_inner()))
     }
 
+    /// Replace the rule set; claims decided from now on use it.
+    pub fn load_rules(&self, rules: RuleSet) {
+        match self.rules.write() {
+            Ok(mut r) => *r = Arc::new(rules),
+            Err(p) => *p.into_inner() = Arc::new(rules),
+        }
+    }
+
     fn refresh_depths(&self) {
         for q in Queue::WORKED {
             self.metrics
@@ -206,6 +214,16 @@ impl Service {
         &self,
         claim: Claim,
         now: DateTime<Utc>,
+    ) -> Result<(DecisionRecord, IntakeStatus), ServiceError> {
+        self.decide_as(claim, now, None)
+    }
+
+    /// As [`Service::decide`], recording which caller filed the claim.
+    pub fn decide_as(
+        &self,
+        claim: Claim,
+        now: DateTime<Utc>,
+        submitted_by: Option<&str>,
     ) -> Result<(DecisionRecord, IntakeStatus), ServiceError> {
         let hash = content_hash(&claim);
         let _guard = self
@@ -309,6 +327,7 @@ impl Service {
                 .collect(),
             claim,
             challenger,
+            submitted_by: submitted_by.map(String::from),
         };
         // A claim already adjudicated is re-scored for the record but not queued again.
         let adjudicated = self.store.outcome(&rec.claim_id)?.is_some();
@@ -358,7 +377,17 @@ impl Service {
 
     /// Decide one claim and return once the decision is on disk.
     pub async fn intake(&self, claim: Claim, now: DateTime<Utc>) -> Result<Decision, ServiceError> {
-        let (rec, status) = self.decide(claim, now)?;
+        self.intake_as(claim, now, None).await
+    }
+
+    /// As [`Service::intake`], recording which caller filed the claim.
+    pub async fn intake_as(
+        &self,
+        claim: Claim,
+        now: DateTime<Utc>,
+        submitted_by: Option<&str>,
+    ) -> Result<Decision, ServiceError> {
+        let (rec, status) = self.decide_as(claim, now, submitted_by)?;
         self.store.flusher.durable().await;
         Ok(Decision::from_record(&rec, status))
     }
@@ -370,6 +399,17 @@ impl Service {
         claim_id: &str,
         report: OutcomeReport,
         now: DateTime<Utc>,
+    ) -> Result<Option<(OutcomeRecord, bool)>, ServiceError> {
+        self.record_outcome_as(claim_id, report, now, None).await
+    }
+
+    /// As [`Service::record_outcome`], recording which caller posted it.
+    pub async fn record_outcome_as(
+        &self,
+        claim_id: &str,
+        report: OutcomeReport,
+        now: DateTime<Utc>,
+        posted_by: Option<&str>,
     ) -> Result<Option<(OutcomeRecord, bool)>, ServiceError> {
         let (rec, created) = {
             let _guard = self
@@ -391,6 +431,7 @@ impl Service {
                     revision: current.as_ref().map_or(1, |c| c.revision + 1),
                     claim_revision: head.revision,
                     recorded_at: now.to_rfc3339(),
+                    posted_by: posted_by.map(String::from),
                     report,
                 };
                 self.store.record_outcome(&rec, &decision)?;
@@ -427,6 +468,59 @@ impl Service {
             self.store.flusher.durable().await;
         }
         Ok(item)
+    }
+
+    /// Set or lift a legal hold. `Ok(false)` when the claim is unknown (nothing stored).
+    pub async fn set_hold(
+        &self,
+        claim_id: &str,
+        hold: Option<crate::store::Hold>,
+    ) -> Result<bool, ServiceError> {
+        {
+            // Under the intake lock, so a purge or an intake never interleaves with it.
+            let _g = self
+                .intake_lock
+                .lock()
+                .map_err(|_| ServiceError::Poisoned)?;
+            if self.store.head(claim_id)?.is_none() {
+                return Ok(false);
+            }
+            self.store.set_hold(claim_id, hold.as_ref())?;
+        }
+        self.store.flusher.durable().await;
+        Ok(true)
+    }
+
+    /// Purge every claim with no activity in the last `days` days, except those under legal
+    /// hold. Each claim goes in its own transaction, under the intake lock so that a claim
+    /// being revised at the same moment is either purged before or kept whole.
+    pub async fn purge(
+        &self,
+        days: u32,
+        now: DateTime<Utc>,
+    ) -> Result<crate::store::PurgeReport, ServiceError> {
+        let cutoff = now - chrono::Duration::days(i64::from(days));
+        let candidates = self.store.inactive_since(cutoff)?;
+        let mut report = crate::store::PurgeReport::default();
+        for id in candidates {
+            let _g = self
+                .intake_lock
+                .lock()
+                .map_err(|_| ServiceError::Poisoned)?;
+            match self.store.purge_claim(&id)? {
+                Some(n) => {
+                    report.purged_claims += 1;
+                    report.removed_entries += n;
+                }
+                None => report.kept_on_hold += 1,
+            }
+        }
+        self.store.flusher.durable().await;
+        self.metrics
+            .purged_claims
+            .inc_by(report.purged_claims as u64);
+        self.refresh_depths();
+        Ok(report)
     }
 
     pub async fn release(&self, queue: Queue, claim_id: &str) -> Result<bool, ServiceError> {

@@ -12,6 +12,7 @@
 //! | `queue_rank` | queue `\0` rank (priority, descending) claim id | empty |
 //! | `outcomes` | claim id | latest [`OutcomeRecord`] |
 //! | `outcome_revisions` | claim id `\0` revision (u32, big-endian) | every [`OutcomeRecord`] |
+//! | `holds` | claim id | [`Hold`] (legal hold: exempt from retention purges) |
 //!
 //! Every intake writes all of these in one sled transaction, so a reader (or a restart) sees a
 //! claim with its history, decision and queue entry, or none of them. Durability: sled writes
@@ -87,6 +88,46 @@ pub struct DecisionRecord {
     /// routing).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub challenger: Option<ShadowScore>,
+    /// Name of the API key that filed this revision (a claims system reads only its own).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub submitted_by: Option<String>,
+}
+
+/// A legal hold: the claim is exempt from retention purges until the hold is lifted.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Hold {
+    pub claim_id: String,
+    pub reason: String,
+    pub set_at: String,
+    pub set_by: String,
+}
+
+/// What a retention purge did.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct PurgeReport {
+    pub purged_claims: usize,
+    pub kept_on_hold: usize,
+    /// Entries removed from each tree, for the operator's log.
+    pub removed_entries: usize,
+}
+
+/// Everything held about one person, for a subject access request.
+#[derive(Debug, Clone, Serialize)]
+pub struct PersonRecords {
+    pub person_id: String,
+    /// Claims naming the id as claimant or as any party, each with every revision's audit
+    /// record (the claim as filed, its features and decision), outcomes and hold.
+    pub claims: Vec<ClaimRecords>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct ClaimRecords {
+    pub claim_id: String,
+    /// How the person appears: `claimant`, `repairer`, ...
+    pub appears_as: Vec<String>,
+    pub revisions: Vec<DecisionRecord>,
+    pub outcomes: Vec<OutcomeRecord>,
+    pub hold: Option<Hold>,
 }
 
 /// A challenger's shadow score of one claim.
@@ -264,6 +305,7 @@ pub struct Store {
     queue_rank: sled::Tree,
     outcomes: sled::Tree,
     outcome_revisions: sled::Tree,
+    holds: sled::Tree,
     pub flusher: Arc<Flusher>,
 }
 
@@ -295,6 +337,7 @@ impl Store {
             queue_rank: db.open_tree("queue_rank")?,
             outcomes: db.open_tree("outcomes")?,
             outcome_revisions: db.open_tree("outcome_revisions")?,
+            holds: db.open_tree("holds")?,
             db,
             flusher: Flusher::new(),
         })
@@ -473,9 +516,9 @@ impl Store {
     }
 
     /// Entries in every tree (claims, revisions, history, queue items, queue ranks, outcomes,
-    /// outcome revisions): a cheap way for tests and operators to see that nothing was
+    /// outcome revisions, holds): a cheap way for tests and operators to see that nothing was
     /// half-written.
-    pub fn tree_sizes(&self) -> [usize; 7] {
+    pub fn tree_sizes(&self) -> [usize; 8] {
         [
             self.claims.len(),
             self.revisions.len(),
@@ -484,6 +527,7 @@ impl Store {
             self.queue_rank.len(),
             self.outcomes.len(),
             self.outcome_revisions.len(),
+            self.holds.len(),
         ]
     }
 
@@ -573,6 +617,152 @@ impl Store {
             f(&rec, outcome.as_ref());
         }
         Ok(())
+    }
+
+    pub fn hold(&self, claim_id: &str) -> Result<Option<Hold>, StoreError> {
+        self.holds
+            .get(claim_id.as_bytes())?
+            .map(|v| decode("hold", &v))
+            .transpose()
+    }
+
+    /// Set (`Some`) or lift (`None`) a legal hold.
+    pub fn set_hold(&self, claim_id: &str, hold: Option<&Hold>) -> Result<(), StoreError> {
+        match hold {
+            Some(h) => self.holds.insert(claim_id.as_bytes(), encode(h))?,
+            None => self.holds.remove(claim_id.as_bytes())?,
+        };
+        Ok(())
+    }
+
+    pub fn hold_count(&self) -> usize {
+        self.holds.len()
+    }
+
+    /// Remove one claim entirely (every revision, its history events, queue entry, outcomes)
+    /// in one transaction, unless it is under legal hold. Returns the entries removed, or
+    /// `None` when the claim is held or unknown.
+    pub fn purge_claim(&self, claim_id: &str) -> Result<Option<usize>, StoreError> {
+        if self.holds.contains_key(claim_id.as_bytes())? {
+            return Ok(None);
+        }
+        let Some(head) = self.head(claim_id)? else {
+            return Ok(None);
+        };
+        let latest = self.decision(claim_id, head.revision)?;
+        let rev_keys: Vec<sled::IVec> = self
+            .revisions
+            .scan_prefix(sep(&[claim_id.as_bytes(), &[]]))
+            .keys()
+            .collect::<Result<_, _>>()?;
+        let out_keys: Vec<sled::IVec> = self
+            .outcome_revisions
+            .scan_prefix(sep(&[claim_id.as_bytes(), &[]]))
+            .keys()
+            .collect::<Result<_, _>>()?;
+        let events = latest
+            .as_ref()
+            .map(|r| events_of(&r.claim))
+            .unwrap_or_default();
+        let removed = 1 + rev_keys.len() + out_keys.len() + events.len();
+        (
+            &self.claims,
+            &self.revisions,
+            &self.history,
+            &self.queue_items,
+            &self.queue_rank,
+            &self.outcomes,
+            &self.outcome_revisions,
+            &self.holds,
+        )
+            .transaction(
+                |(claims, revisions, history, items, rank, outcomes, out_revs, holds)| {
+                    // A hold set while this purge was being prepared wins.
+                    if holds.get(claim_id.as_bytes())?.is_some() {
+                        return Err(ConflictableTransactionError::Abort("held".to_string()));
+                    }
+                    claims.remove(claim_id.as_bytes())?;
+                    for k in &rev_keys {
+                        revisions.remove(k)?;
+                    }
+                    for k in &out_keys {
+                        out_revs.remove(k)?;
+                    }
+                    outcomes.remove(claim_id.as_bytes())?;
+                    if let Some(r) = &latest {
+                        for (entity, e) in &events {
+                            history.remove(history_key(entity, e.at, e.claim))?;
+                        }
+                        items.remove(item_key(r.queue, claim_id))?;
+                        rank.remove(rank_key(r.queue, r.priority, claim_id))?;
+                    }
+                    Ok(())
+                },
+            )
+            .map_or_else(
+                |e| match e {
+                    TransactionError::Abort(_) => Ok(None),
+                    TransactionError::Storage(s) => Err(StoreError::Sled(s)),
+                },
+                |()| Ok(Some(removed)),
+            )
+    }
+
+    /// Claims whose last activity (latest decision or outcome) is before `cutoff`.
+    pub fn inactive_since(
+        &self,
+        cutoff: chrono::DateTime<chrono::Utc>,
+    ) -> Result<Vec<String>, StoreError> {
+        let mut out = Vec::new();
+        let last = |s: &str| {
+            chrono::DateTime::parse_from_rfc3339(s)
+                .map(|t| t.with_timezone(&chrono::Utc))
+                .ok()
+        };
+        self.for_each_latest(|rec, outcome| {
+            let mut t = last(&rec.decided_at);
+            if let Some(o) = outcome {
+                t = t.max(last(&o.recorded_at));
+            }
+            if t.is_some_and(|t| t < cutoff) {
+                out.push(rec.claim_id.clone());
+            }
+        })?;
+        Ok(out)
+    }
+
+    /// Every claim naming `person_id` as claimant or as a party, with everything stored about
+    /// it. Found through the history index, so it costs one range scan per role.
+    pub fn person_records(&self, person_id: &str) -> Result<PersonRecords, StoreError> {
+        let mut found: BTreeMap<String, Vec<String>> = BTreeMap::new();
+        let roles =
+            std::iter::once("claimant").chain(crate::claim::Role::ALL.iter().map(|r| r.as_str()));
+        for role in roles {
+            let entity = format!("{role}:{person_id}");
+            for kv in self.history.scan_prefix(sep(&[entity.as_bytes(), &[]])) {
+                // Ids hold no control characters, so the `\0` ends the prefix exactly.
+                let (_, v) = kv?;
+                let id = String::from_utf8_lossy(v.get(16..).unwrap_or_default()).into_owned();
+                let roles = found.entry(id).or_default();
+                if !roles.iter().any(|r| r == role) {
+                    roles.push(role.to_string());
+                }
+            }
+        }
+        let mut claims = Vec::new();
+        for (claim_id, appears_as) in found {
+            claims.push(ClaimRecords {
+                revisions: self.revisions(&claim_id)?,
+                outcomes: self.outcome_history(&claim_id)?,
+                hold: self.hold(&claim_id)?,
+                claim_id,
+                appears_as,
+            });
+        }
+        Ok(PersonRecords {
+            person_id: person_id.to_string(),
+            claims,
+        })
     }
 
     /// Other claims naming any of this claim's parties, policy or address (not the claimant

@@ -3,8 +3,8 @@
 
 use crate::rules::Queue;
 use prometheus::{
-    Encoder, Gauge, GaugeVec, Histogram, HistogramOpts, IntCounterVec, IntGaugeVec, Opts, Registry,
-    TextEncoder,
+    Encoder, Gauge, GaugeVec, Histogram, HistogramOpts, IntCounter, IntCounterVec, IntGaugeVec,
+    Opts, Registry, TextEncoder,
 };
 
 /// Why a claim was refused at intake (the `reason` label).
@@ -34,6 +34,10 @@ pub struct Metrics {
     pub awaiting_outcome: Gauge,
     /// Referral rate of a segment value divided by the highest in its segment.
     pub referral_rate_ratio: GaugeVec,
+    /// Claims removed by retention purges.
+    pub purged_claims: IntCounter,
+    /// Requests refused by access control, by reason (missing/unknown key, role).
+    pub auth_refused: IntCounterVec,
 }
 
 fn must<T>(r: prometheus::Result<T>) -> T {
@@ -111,6 +115,20 @@ impl Metrics {
             ),
             &["segment", "value"],
         ));
+        let purged_claims = must(IntCounter::new(
+            "weir_purged_claims_total",
+            "Claims removed by retention purges (legal holds exempt)",
+        ));
+        let auth_refused = must(IntCounterVec::new(
+            Opts::new(
+                "weir_auth_refused_total",
+                "Requests refused by access control, by reason",
+            ),
+            &["reason"],
+        ));
+        for r in ["missing_key", "unknown_key", "role"] {
+            auth_refused.with_label_values(&[r]);
+        }
         for o in crate::feedback::Outcome::ALL {
             outcomes.with_label_values(&[o.as_str()]);
         }
@@ -127,6 +145,8 @@ impl Metrics {
             Box::new(queue_depth.clone()),
             Box::new(http_requests.clone()),
             Box::new(flush.clone()),
+            Box::new(purged_claims.clone()),
+            Box::new(auth_refused.clone()),
         ] {
             must(registry.register(c));
         }
@@ -156,6 +176,8 @@ impl Metrics {
             precision,
             awaiting_outcome,
             referral_rate_ratio,
+            purged_claims,
+            auth_refused,
         }
     }
 

@@ -64,6 +64,9 @@ fn settings() -> HttpSettings {
             (Queue::DeskCheck, 6.0),
             (Queue::Audit, 1.0),
         ],
+        access: std::sync::Arc::new(weir::access::Access::Open),
+        retention_days: 0,
+        retention_check_hours: 24,
     }
 }
 
@@ -96,6 +99,38 @@ async fn call(
     let mut req = Request::builder().method(method).uri(uri);
     if let Some(ct) = ct {
         req = req.header("content-type", ct);
+    }
+    let resp = app
+        .clone()
+        .oneshot(req.body(Body::from(body)).unwrap())
+        .await
+        .unwrap();
+    let status = resp.status();
+    let ctype = resp
+        .headers()
+        .get("content-type")
+        .map(|v| v.to_str().unwrap().to_string())
+        .unwrap_or_default();
+    let bytes = resp.into_body().collect().await.unwrap().to_bytes();
+    let v = serde_json::from_slice(&bytes)
+        .unwrap_or(Value::String(String::from_utf8_lossy(&bytes).into()));
+    (status, ctype, v)
+}
+
+async fn call_as(
+    app: &axum::Router,
+    key: Option<&str>,
+    method: Method,
+    uri: &str,
+    ct: Option<&str>,
+    body: Vec<u8>,
+) -> (StatusCode, String, Value) {
+    let mut req = Request::builder().method(method).uri(uri);
+    if let Some(ct) = ct {
+        req = req.header("content-type", ct);
+    }
+    if let Some(k) = key {
+        req = req.header("authorization", format!("Bearer {k}"));
     }
     let resp = app
         .clone()
@@ -511,11 +546,12 @@ async fn operations_routes_and_openapi_match_the_router() {
     // Every operation in the OpenAPI document exists on the router (not a route-404 or 405).
     let (_, _, doc) = call(&app, Method::GET, "/v1/openapi.json", None, vec![]).await;
     let paths = doc["paths"].as_object().unwrap();
-    assert_eq!(paths.len(), 20, "document and router list 20 paths");
+    assert_eq!(paths.len(), 24, "document and router list 24 paths");
     for (path, ops) in paths {
         let uri = path
             .replace("{claim_id}", "M-1")
-            .replace("{queue}", "audit");
+            .replace("{queue}", "audit")
+            .replace("{claimant_id}", "K-1");
         for method in ops.as_object().unwrap().keys() {
             let m = Method::from_bytes(method.to_uppercase().as_bytes()).unwrap();
             let (status, _, p) = call(
@@ -534,20 +570,36 @@ async fn operations_routes_and_openapi_match_the_router() {
     }
 }
 
-/// A configuration for a real `weir serve` on a free port, on `dir`'s sled folder.
-fn server_config(dir: &Path) -> PathBuf {
+/// Keys of a real server: one for every role (`all`), and one per role.
+struct Keys {
+    all: String,
+    claims_system: String,
+    investigator: String,
+}
+
+/// A configuration for a real `weir serve` on a free port, on `dir`'s sled folder, with a key
+/// file made by `weir::access::add_key` and JSON logs.
+fn server_config(dir: &Path) -> (PathBuf, Keys) {
+    use weir::access::{Role, add_key};
     let config = dir.join("weir.toml");
+    let key_file = dir.join("keys.toml");
+    let keys = Keys {
+        all: add_key(&key_file, "test-everything", Role::ALL.to_vec()).unwrap(),
+        claims_system: add_key(&key_file, "test-claims-system", vec![Role::ClaimsSystem]).unwrap(),
+        investigator: add_key(&key_file, "test-investigator", vec![Role::Investigator]).unwrap(),
+    };
     std::fs::write(
         &config,
         format!(
-            "[server]\nlisten = \"127.0.0.1:0\"\n[store]\npath = {:?}\n[paths]\nmodel = {:?}\nrules = {:?}\n",
+            "[server]\nlisten = \"127.0.0.1:0\"\nlog_format = \"json\"\n[store]\npath = {:?}\n[paths]\nmodel = {:?}\nrules = {:?}\n[access]\nkey_file = {:?}\n",
             dir.join("store"),
             model_path(),
-            rules_path()
+            rules_path(),
+            key_file
         ),
     )
     .unwrap();
-    config
+    (config, keys)
 }
 
 /// Start the real binary and read the address it prints.
@@ -555,7 +607,13 @@ fn start_server(config: &Path) -> (std::process::Child, std::net::SocketAddr) {
     let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_weir"))
         .args(["serve", "--config", config.to_str().unwrap()])
         .stdout(std::process::Stdio::piped())
-        .stderr(std::process::Stdio::null())
+        .stderr(
+            std::fs::OpenOptions::new()
+                .create(true)
+                .append(true)
+                .open(config.with_file_name("serve.log"))
+                .unwrap(),
+        )
         .spawn()
         .unwrap();
     let mut line = String::new();
@@ -576,31 +634,35 @@ fn start_server(config: &Path) -> (std::process::Child, std::net::SocketAddr) {
 #[test]
 fn real_server_keeps_acknowledged_claims_across_restart() {
     let dir = tempdir("restart");
-    let config = server_config(&dir);
+    let (config, keys) = server_config(&dir);
     let rt = tokio::runtime::Runtime::new().unwrap();
     let mut first: Option<Value> = None;
     for round in 0..2 {
         let (mut child, addr) = start_server(&config);
+        let api = weir::client::Api::new(addr);
+        let intake = api.with_key(&keys.claims_system);
+        let investigator = api.with_key(&keys.investigator);
         rt.block_on(async {
             if round == 0 {
-                let r = weir::client::post_json(addr, "/v1/claims", &claim("R-1"))
-                    .await
-                    .unwrap();
+                let r = api.post_json("/v1/claims", &claim("R-1")).await.unwrap();
+                assert_eq!(r.status, StatusCode::UNAUTHORIZED, "no key, no intake");
+                let r = intake.post_json("/v1/claims", &claim("R-1")).await.unwrap();
                 assert_eq!(r.status, StatusCode::CREATED);
                 first = Some(r.json().unwrap());
-                let bad = weir::client::post_json(addr, "/v1/claims", &json!({"claim_id": "R-2"}))
+                let bad = intake
+                    .post_json("/v1/claims", &json!({"claim_id": "R-2"}))
                     .await
                     .unwrap();
                 assert_eq!(bad.status, StatusCode::UNPROCESSABLE_ENTITY);
             } else {
-                let r = weir::client::get(addr, "/v1/claims/R-1").await.unwrap();
+                let r = investigator.get("/v1/claims/R-1").await.unwrap();
                 assert_eq!(r.status, StatusCode::OK);
                 let v = r.json().unwrap();
                 let f = first.as_ref().unwrap();
                 assert_eq!(v["decision"]["decided_at"], f["decided_at"]);
                 assert_eq!(v["decision"]["queue"], f["queue"]);
                 assert_eq!(v["decision"]["model_probability"], f["model_probability"]);
-                let r = weir::client::get(addr, "/v1/claims/R-2").await.unwrap();
+                let r = investigator.get("/v1/claims/R-2").await.unwrap();
                 assert_eq!(r.status, StatusCode::NOT_FOUND);
             }
         });
@@ -610,6 +672,19 @@ fn real_server_keeps_acknowledged_claims_across_restart() {
             .unwrap();
         let status = child.wait().unwrap();
         assert!(status.success(), "graceful shutdown exit: {status}");
+    }
+    // Logs name the caller by its key's name, never the key, and carry ids, not claim content.
+    let log = std::fs::read_to_string(dir.join("serve.log")).unwrap();
+    assert!(log.contains("\"caller\":\"test-claims-system\""), "{log}");
+    assert!(log.contains("R-1"), "claim ids are logged");
+    for secret in [&keys.all, &keys.claims_system, &keys.investigator] {
+        assert!(!log.contains(secret.as_str()), "a key reached the log");
+    }
+    for content in ["K-1", "R-9", "B-3", "9000"] {
+        assert!(
+            !log.contains(content),
+            "claim content {content} reached the log"
+        );
     }
 }
 
@@ -1485,7 +1560,8 @@ fn acknowledged_writes_survive_sigkill() {
     use std::collections::BTreeMap;
     use std::sync::{Arc, Mutex};
     let dir = tempdir("crash");
-    let config = server_config(&dir);
+    let (config, keys) = server_config(&dir);
+    let key = keys.all;
     let seed = std::time::SystemTime::now()
         .duration_since(std::time::UNIX_EPOCH)
         .unwrap()
@@ -1505,11 +1581,10 @@ fn acknowledged_writes_survive_sigkill() {
     let verify = |addr: std::net::SocketAddr,
                   claims: &BTreeMap<String, Value>,
                   outcomes: &BTreeMap<String, Value>| {
+        let api = weir::client::Api::new(addr).with_key(&key);
         rt.block_on(async {
             for (id, d) in claims {
-                let r = weir::client::get(addr, &format!("/v1/claims/{id}"))
-                    .await
-                    .unwrap();
+                let r = api.get(&format!("/v1/claims/{id}")).await.unwrap();
                 assert_eq!(r.status, StatusCode::OK, "acknowledged claim {id} lost");
                 let v = r.json().unwrap();
                 assert_eq!(
@@ -1530,15 +1605,11 @@ fn acknowledged_writes_survive_sigkill() {
                 }
             }
             // Nothing half-written: every stored claim reads back whole.
-            let export = weir::client::get(addr, "/v1/export/training")
-                .await
-                .unwrap();
+            let export = api.get("/v1/export/training").await.unwrap();
             for line in export.body.split(|&b| b == b'\n').filter(|l| !l.is_empty()) {
                 let v: Value = serde_json::from_slice(line).unwrap();
                 let id = v["claim_id"].as_str().unwrap();
-                let r = weir::client::get(addr, &format!("/v1/claims/{id}"))
-                    .await
-                    .unwrap();
+                let r = api.get(&format!("/v1/claims/{id}")).await.unwrap();
                 assert_eq!(r.status, StatusCode::OK, "{id} listed but unreadable");
             }
         })
@@ -1556,20 +1627,21 @@ fn acknowledged_writes_survive_sigkill() {
             for worker in 0..4u64 {
                 let claims = Arc::clone(&acked_claims);
                 let outcomes = Arc::clone(&acked_outcomes);
+                let api = weir::client::Api::new(addr).with_key(&key);
                 tasks.push(tokio::spawn(async move {
                     for i in 0.. {
                         let id = format!("K{cycle}-{worker}-{i}");
                         let mut c = claim(&id);
                         c["claimant_id"] = json!(format!("KC-{}", i % 7));
                         c["parties"][0]["id"] = json!(format!("R-{}", i % 3));
-                        let Ok(r) = weir::client::post_json(addr, "/v1/claims", &c).await else { return };
+                        let Ok(r) = api.post_json("/v1/claims", &c).await else { return };
                         if r.status.is_success() {
                             claims.lock().unwrap().insert(id.clone(), r.json().unwrap());
                         }
                         if i % 2 == 0 {
                             let o = json!({"outcome": if i % 4 == 0 { "genuine" } else { "fraud_confirmed" },
                                 "adjudicated_on": "2025-05-01", "decided_by": "crash-test"});
-                            let Ok(r) = weir::client::post_json(addr, &format!("/v1/claims/{id}/outcome"), &o).await else { return };
+                            let Ok(r) = api.post_json(&format!("/v1/claims/{id}/outcome"), &o).await else { return };
                             if r.status.is_success() {
                                 outcomes.lock().unwrap().insert(id.clone(), r.json().unwrap());
                             }
@@ -1601,4 +1673,490 @@ fn acknowledged_writes_survive_sigkill() {
     );
     child.kill().unwrap();
     let _ = child.wait();
+}
+
+/// One key per role (named after the role) and the app serving with those keys.
+fn app_with_keys(
+    svc: &Service,
+    retention_days: u32,
+) -> (
+    axum::Router,
+    std::collections::BTreeMap<weir::access::Role, String>,
+) {
+    use weir::access::{Access, Role, entry_toml, new_key};
+    let mut text = String::new();
+    let mut keys = std::collections::BTreeMap::new();
+    for r in Role::ALL {
+        let (k, e) = new_key(r.as_str(), vec![r]);
+        text.push_str(&entry_toml(&e));
+        keys.insert(r, k);
+    }
+    let mut st = settings();
+    st.access = std::sync::Arc::new(Access::from_toml(&text, "test keys").unwrap());
+    st.retention_days = retention_days;
+    (http::app(svc.clone(), st), keys)
+}
+
+/// The full route × role matrix: every API route refuses a missing or unknown key with 401,
+/// refuses every role not in its entry with 403 and lets every listed role through; a refused
+/// request changes nothing; every documented operation has an entry and every entry is
+/// documented; the operations routes need no key.
+#[tokio::test]
+async fn every_route_checks_its_roles() {
+    use weir::access::Role;
+    use weir::http::ROUTE_ROLES;
+    let dir = tempdir("matrix");
+    let svc = service(&dir);
+    let (app, keys) = app_with_keys(&svc, 3650);
+    let cs = Some(keys[&Role::ClaimsSystem].as_str());
+    let body = serde_json::to_vec(&claim("M-1")).unwrap();
+    let (status, _, _) = call_as(
+        &app,
+        cs,
+        Method::POST,
+        "/v1/claims",
+        Some("application/json"),
+        body,
+    )
+    .await;
+    assert_eq!(status, StatusCode::CREATED);
+
+    let doc: Value = serde_json::from_str(http::OPENAPI).unwrap();
+    let ops_routes = ["/healthz", "/readyz", "/metrics", "/v1/openapi.json"];
+    let mut documented = Vec::new();
+    for (path, ops) in doc["paths"].as_object().unwrap() {
+        for (m, op) in ops.as_object().unwrap() {
+            if ops_routes.contains(&path.as_str()) {
+                continue;
+            }
+            let m = m.to_uppercase();
+            let entry = ROUTE_ROLES
+                .iter()
+                .find(|(rm, rp, _)| *rm == m && rp == path);
+            let (_, _, roles) = entry.unwrap_or_else(|| panic!("{m} {path} has no role entry"));
+            let listed: Vec<&str> = roles.iter().map(|r| r.as_str()).collect();
+            assert_eq!(
+                op["x-weir-roles"],
+                json!(listed),
+                "{m} {path}: document and table differ"
+            );
+            documented.push((m, path.clone()));
+        }
+    }
+    assert_eq!(
+        documented.len(),
+        ROUTE_ROLES.len(),
+        "a table entry is not documented"
+    );
+
+    let unknown = "weir_".to_string() + &"0".repeat(64);
+    let mut cells = 0;
+    for (method, path, allowed) in ROUTE_ROLES {
+        let uri = path
+            .replace("{claim_id}", "M-1")
+            .replace("{queue}", "audit")
+            .replace("{claimant_id}", "K-1");
+        let m = Method::from_bytes(method.as_bytes()).unwrap();
+        let before = svc.store.tree_sizes();
+        for key in [None, Some(unknown.as_str())] {
+            let (status, ct, p) = call_as(
+                &app,
+                key,
+                m.clone(),
+                &uri,
+                Some("application/json"),
+                b"{}".to_vec(),
+            )
+            .await;
+            assert_eq!(
+                status,
+                StatusCode::UNAUTHORIZED,
+                "{method} {path} with {key:?}"
+            );
+            assert_eq!(ct, "application/problem+json");
+            assert_eq!(p["type"], "urn:weir:problem:unauthenticated");
+        }
+        for role in Role::ALL {
+            let (status, _, p) = call_as(
+                &app,
+                Some(&keys[&role]),
+                m.clone(),
+                &uri,
+                Some("application/json"),
+                b"{}".to_vec(),
+            )
+            .await;
+            if allowed.contains(&role) {
+                assert!(
+                    status != StatusCode::UNAUTHORIZED && status != StatusCode::FORBIDDEN,
+                    "{method} {path} refused {role:?}: {status} {p}"
+                );
+            } else {
+                assert_eq!(
+                    status,
+                    StatusCode::FORBIDDEN,
+                    "{method} {path} let {role:?} in: {p}"
+                );
+                assert_eq!(p["type"], "urn:weir:problem:forbidden");
+                assert!(
+                    p["detail"].as_str().unwrap().contains(allowed[0].as_str()),
+                    "{p}"
+                );
+                assert_eq!(
+                    svc.store.tree_sizes(),
+                    before,
+                    "a refused request left a trace"
+                );
+            }
+            cells += 1;
+        }
+    }
+    assert_eq!(cells, ROUTE_ROLES.len() * Role::ALL.len());
+    for path in ops_routes {
+        let (status, _, _) = call_as(&app, None, Method::GET, path, None, vec![]).await;
+        assert_eq!(status, StatusCode::OK, "{path} must stay open for probes");
+    }
+    let (_, _, metrics) = call_as(&app, None, Method::GET, "/metrics", None, vec![]).await;
+    let text = metrics.as_str().unwrap();
+    assert!(
+        text.contains("weir_auth_refused_total{reason=\"missing_key\"}"),
+        "{text}"
+    );
+}
+
+/// A claims system reads the decisions on its own claims and nothing else; leases are held in
+/// the key's name; outcomes record who posted them.
+#[tokio::test]
+async fn claims_systems_read_only_their_own_and_names_come_from_keys() {
+    use weir::access::{Access, Role, entry_toml, new_key};
+    let dir = tempdir("own");
+    let svc = service(&dir);
+    let mut text = String::new();
+    let mut keys = std::collections::BTreeMap::new();
+    for (name, role) in [
+        ("north-intake", Role::ClaimsSystem),
+        ("south-intake", Role::ClaimsSystem),
+        ("inv-ada", Role::Investigator),
+    ] {
+        let (k, e) = new_key(name, vec![role]);
+        text.push_str(&entry_toml(&e));
+        keys.insert(name, k);
+    }
+    let mut st = settings();
+    st.access = std::sync::Arc::new(Access::from_toml(&text, "t").unwrap());
+    let app = http::app(svc.clone(), st);
+    let mut c = claim("OWN-1");
+    c["claimed_amount"] = json!(9900.0);
+    let (status, _, d) = call_as(
+        &app,
+        Some(&keys["north-intake"]),
+        Method::POST,
+        "/v1/claims",
+        Some("application/json"),
+        serde_json::to_vec(&c).unwrap(),
+    )
+    .await;
+    assert_eq!(status, StatusCode::CREATED, "{d}");
+    let get = |who: &'static str| {
+        let app = app.clone();
+        let key = keys[who].clone();
+        async move {
+            call_as(
+                &app,
+                Some(&key),
+                Method::GET,
+                "/v1/claims/OWN-1",
+                None,
+                vec![],
+            )
+            .await
+        }
+    };
+    let (status, _, mine) = get("north-intake").await;
+    assert_eq!(status, StatusCode::OK);
+    assert_eq!(mine["decision"]["queue"], d["queue"]);
+    assert!(
+        mine.get("claim").is_none() && mine.get("linked_claims").is_none(),
+        "{mine}"
+    );
+    let (status, _, _) = get("south-intake").await;
+    assert_eq!(
+        status,
+        StatusCode::NOT_FOUND,
+        "another system's claim is not found"
+    );
+    let (status, _, full) = get("inv-ada").await;
+    assert_eq!(status, StatusCode::OK);
+    assert_eq!(full["claim"]["claimant_id"], "K-1");
+
+    let queue = d["queue"].as_str().unwrap();
+    if queue != "no_review" {
+        let inv = Some(keys["inv-ada"].as_str());
+        let lease_uri = format!("/v1/queues/{queue}/lease");
+        let (status, _, p) = call_as(
+            &app,
+            inv,
+            Method::POST,
+            &lease_uri,
+            Some("application/json"),
+            br#"{"investigator": "someone-else"}"#.to_vec(),
+        )
+        .await;
+        assert_eq!(status, StatusCode::BAD_REQUEST, "{p}");
+        let (status, _, item) = call_as(
+            &app,
+            inv,
+            Method::POST,
+            &lease_uri,
+            Some("application/json"),
+            b"{}".to_vec(),
+        )
+        .await;
+        assert_eq!(status, StatusCode::OK, "{item}");
+        assert_eq!(item["lease"]["holder"], "inv-ada");
+    }
+    let o = json!({"outcome": "genuine", "adjudicated_on": "2025-04-01", "decided_by": "panel-2"});
+    let (status, _, rec) = call_as(
+        &app,
+        Some(&keys["inv-ada"]),
+        Method::POST,
+        "/v1/claims/OWN-1/outcome",
+        Some("application/json"),
+        serde_json::to_vec(&o).unwrap(),
+    )
+    .await;
+    assert_eq!(status, StatusCode::CREATED, "{rec}");
+    assert_eq!(rec["posted_by"], "inv-ada");
+    assert_eq!(rec["decided_by"], "panel-2");
+}
+
+/// Retention: claims with no activity for longer than the retention period go, with their
+/// history, audit records, queue entries and outcomes; a claim under legal hold stays whole;
+/// the claimant export finds a person as claimant and as a party.
+#[tokio::test]
+async fn retention_purges_everything_but_legal_holds_and_claimant_export_finds_all() {
+    use weir::access::Role;
+    let dir = tempdir("retention");
+    let svc = service(&dir);
+    let (app, keys) = app_with_keys(&svc, 0);
+    let admin = Some(keys[&Role::Administrator].as_str());
+    let cs = Some(keys[&Role::ClaimsSystem].as_str());
+    let mut a = claim("RET-A");
+    a["claimant_id"] = json!("K-7");
+    let mut b = claim("RET-B");
+    b["claimant_id"] = json!("K-7");
+    b["claimed_amount"] = json!(800.0);
+    let mut c = claim("RET-C");
+    c["claimant_id"] = json!("K-8");
+    c["parties"] = json!([{"role": "witness", "id": "K-7"}, {"role": "repairer", "id": "R-9"}]);
+    for v in [&a, &b, &c] {
+        let (status, _, d) = call_as(
+            &app,
+            cs,
+            Method::POST,
+            "/v1/claims",
+            Some("application/json"),
+            serde_json::to_vec(v).unwrap(),
+        )
+        .await;
+        assert_eq!(status, StatusCode::CREATED, "{d}");
+    }
+    let o = json!({"outcome": "genuine", "adjudicated_on": "2025-04-01", "decided_by": "panel"});
+    svc.record_outcome(
+        "RET-B",
+        weir::feedback::OutcomeReport::from_value(&o).unwrap(),
+        chrono::Utc::now(),
+    )
+    .await
+    .unwrap()
+    .unwrap();
+
+    let (status, _, rec) = call_as(
+        &app,
+        admin,
+        Method::GET,
+        "/v1/claimants/K-7/records",
+        None,
+        vec![],
+    )
+    .await;
+    assert_eq!(status, StatusCode::OK);
+    let found: Vec<(String, Value)> = rec["claims"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|c| {
+            (
+                c["claim_id"].as_str().unwrap().to_string(),
+                c["appears_as"].clone(),
+            )
+        })
+        .collect();
+    assert_eq!(
+        found,
+        vec![
+            ("RET-A".to_string(), json!(["claimant"])),
+            ("RET-B".to_string(), json!(["claimant"])),
+            ("RET-C".to_string(), json!(["witness"])),
+        ]
+    );
+    assert_eq!(rec["claims"][1]["outcomes"][0]["outcome"], "genuine");
+
+    // Retention off: the admin route says so and purges nothing.
+    let (status, _, p) = call_as(&app, admin, Method::POST, "/v1/admin/purge", None, vec![]).await;
+    assert_eq!(status, StatusCode::CONFLICT, "{p}");
+
+    // A hold needs a reason; then it is set.
+    let hold_uri = "/v1/claims/RET-A/hold";
+    let (status, _, p) = call_as(
+        &app,
+        admin,
+        Method::POST,
+        hold_uri,
+        Some("application/json"),
+        br#"{"hold": true}"#.to_vec(),
+    )
+    .await;
+    assert_eq!(
+        (status, p["errors"][0]["field"].as_str()),
+        (StatusCode::BAD_REQUEST, Some("reason"))
+    );
+    let (status, _, p) = call_as(
+        &app,
+        admin,
+        Method::POST,
+        "/v1/claims/NOPE/hold",
+        Some("application/json"),
+        br#"{"hold": true, "reason": "x"}"#.to_vec(),
+    )
+    .await;
+    assert_eq!(status, StatusCode::NOT_FOUND, "{p}");
+    let (status, _, h) = call_as(
+        &app,
+        admin,
+        Method::POST,
+        hold_uri,
+        Some("application/json"),
+        br#"{"hold": true, "reason": "litigation matter 2025-114"}"#.to_vec(),
+    )
+    .await;
+    assert_eq!(status, StatusCode::OK, "{h}");
+    assert_eq!(h["hold"]["set_by"], "administrator");
+
+    let a_claim: weir::claim::Claim = serde_json::from_value(a.clone()).unwrap();
+    let later = chrono::Utc::now() + chrono::Duration::days(60);
+    // Nothing is older than 90 days yet.
+    let r = svc.purge(90, later).await.unwrap();
+    assert_eq!((r.purged_claims, r.kept_on_hold), (0, 0));
+    let r = svc.purge(30, later).await.unwrap();
+    assert_eq!((r.purged_claims, r.kept_on_hold), (2, 1), "{r:?}");
+    let [
+        claims,
+        revisions,
+        history,
+        items,
+        ranks,
+        outcomes,
+        outcome_revs,
+        holds,
+    ] = svc.store.tree_sizes();
+    assert_eq!(
+        (claims, revisions, outcomes, outcome_revs, holds),
+        (1, 1, 0, 0, 1)
+    );
+    assert_eq!(
+        history,
+        weir::features::events_of(&a_claim).len(),
+        "only A's history is left"
+    );
+    assert_eq!(items, ranks);
+    assert!(items <= 1);
+    let (status, _, rec) = call_as(
+        &app,
+        admin,
+        Method::GET,
+        "/v1/claimants/K-7/records",
+        None,
+        vec![],
+    )
+    .await;
+    assert_eq!(status, StatusCode::OK);
+    assert_eq!(rec["claims"].as_array().unwrap().len(), 1);
+    assert_eq!(
+        rec["claims"][0]["hold"]["reason"],
+        "litigation matter 2025-114"
+    );
+    let (status, _, _) = call_as(
+        &app,
+        Some(&keys[&Role::Analyst]),
+        Method::GET,
+        "/v1/claims/RET-B",
+        None,
+        vec![],
+    )
+    .await;
+    assert_eq!(status, StatusCode::NOT_FOUND, "purged claims are gone");
+
+    // Lift the hold: the next purge takes the last claim and leaves every tree empty.
+    let (status, _, _) = call_as(
+        &app,
+        admin,
+        Method::POST,
+        hold_uri,
+        Some("application/json"),
+        br#"{"hold": false}"#.to_vec(),
+    )
+    .await;
+    assert_eq!(status, StatusCode::OK);
+    let r = svc.purge(30, later).await.unwrap();
+    assert_eq!(r.purged_claims, 1);
+    assert_eq!(svc.store.tree_sizes(), [0; 8]);
+}
+
+/// An administrator replaces the rule set; a broken rule file is refused with its line and the
+/// old rules stay.
+#[tokio::test]
+async fn administrators_load_rules_without_a_restart() {
+    use weir::access::Role;
+    let dir = tempdir("rules");
+    let svc = service(&dir);
+    let (app, keys) = app_with_keys(&svc, 0);
+    let admin = Some(keys[&Role::Administrator].as_str());
+    let old = svc.rules().version.clone();
+    let (status, _, p) = call_as(&app, admin, Method::POST, "/v1/admin/rules", Some("application/toml"),
+        b"version = \"x\"\n[[rule]]\nid = \"r\"\nreason = \"r\"\nall = [{ value = \"no_such_feature\", op = \">\", than = 1 }]\n".to_vec()).await;
+    assert_eq!(status, StatusCode::BAD_REQUEST, "{p}");
+    assert!(
+        p["errors"][0]["problem"]
+            .as_str()
+            .unwrap()
+            .contains("no_such_feature"),
+        "{p}"
+    );
+    assert_eq!(svc.rules().version, old);
+    let text = std::fs::read_to_string(rules_path())
+        .unwrap()
+        .replace(&old, "2026-12-02.test");
+    let (status, _, r) = call_as(
+        &app,
+        admin,
+        Method::POST,
+        "/v1/admin/rules",
+        Some("application/toml"),
+        text.into_bytes(),
+    )
+    .await;
+    assert_eq!(status, StatusCode::OK, "{r}");
+    assert_eq!(svc.rules().version, "2026-12-02.test");
+    let (status, _, d) = call_as(
+        &app,
+        Some(&keys[&Role::ClaimsSystem]),
+        Method::POST,
+        "/v1/claims",
+        Some("application/json"),
+        serde_json::to_vec(&claim("RULES-1")).unwrap(),
+    )
+    .await;
+    assert_eq!(status, StatusCode::CREATED);
+    assert_eq!(d["rules_version"], "2026-12-02.test");
 }

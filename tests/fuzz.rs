@@ -177,7 +177,7 @@ proptest! {
         let mut v = valid_claim();
         v["claim_id"] = json!("x".repeat(len));
         let r = Claim::from_json(&serde_json::to_vec(&v).unwrap());
-        prop_assert_eq!(r.is_ok(), len >= 1 && len <= weir::claim::MAX_STRING_BYTES);
+        prop_assert_eq!(r.is_ok(), (1..=weir::claim::MAX_STRING_BYTES).contains(&len));
     }
 }
 

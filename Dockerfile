@@ -18,9 +18,12 @@ ENV WEIR_SERVER_LISTEN=0.0.0.0:8080 \
     WEIR_STORE_PATH=/var/lib/weir/store \
     WEIR_PATHS_MODEL=/var/lib/weir/model.json \
     WEIR_PATHS_RULES=/etc/weir/rules.toml \
+    WEIR_ACCESS_KEY_FILE=/etc/weir-keys/keys.toml \
     WEIR_SERVER_LOG_FORMAT=json
 EXPOSE 8080
 # Train a model first (weir train ... --out /var/lib/weir/model.json), e.g. on the demo data
-# shipped in /usr/share/weir/demo-data, then serve.
+# shipped in /usr/share/weir/demo-data, and mount a key file made with `weir keys add` at
+# /etc/weir-keys/keys.toml (it holds only hashes), then serve. TLS belongs to the proxy in
+# front (ops/reverse-proxy/nginx.conf).
 ENTRYPOINT ["weir"]
 CMD ["serve", "--config", "/etc/weir/weir.toml"]

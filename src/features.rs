@@ -58,10 +58,36 @@ pub fn events_of(claim: &Claim) -> Vec<(String, HistoryEvent)> {
     claim.entity_keys().into_iter().map(|k| (k, ev)).collect()
 }
 
+/// FNV-1a as a `HashMap` hasher: entity keys are short strings, for which SipHash (the
+/// default, built to resist crafted collisions) costs more than the lookup itself. Training
+/// data is the insurer's own, so collision attacks are not a concern here.
+#[derive(Default, Clone, Copy)]
+pub struct FnvHasher(u64);
+
+impl std::hash::Hasher for FnvHasher {
+    fn finish(&self) -> u64 {
+        self.0
+    }
+    fn write(&mut self, bytes: &[u8]) {
+        let mut h = if self.0 == 0 {
+            0xcbf2_9ce4_8422_2325
+        } else {
+            self.0
+        };
+        for &b in bytes {
+            h ^= u64::from(b);
+            h = h.wrapping_mul(0x0100_0000_01b3);
+        }
+        self.0 = h;
+    }
+}
+
+pub type FnvBuild = std::hash::BuildHasherDefault<FnvHasher>;
+
 /// History held in memory, per entity sorted by time.
 #[derive(Debug, Default)]
 pub struct MemoryHistory {
-    by_entity: HashMap<String, Vec<HistoryEvent>>,
+    by_entity: HashMap<String, Vec<HistoryEvent>, FnvBuild>,
 }
 
 impl MemoryHistory {
@@ -288,7 +314,15 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
     let claim_h = stable_hash(&claim.claim_id);
     let claimant_h = stable_hash(&claim.claimant_id);
     let mut seen = Vec::new();
-    let mut stats = |key: String| entity_stats(history, &key, t, claim_h, claimant_h, &mut seen);
+    // One key buffer for every entity of the claim, rather than a new String each.
+    let mut key = String::with_capacity(96);
+    let mut stats = |kind: &str, id: &str| {
+        key.clear();
+        key.push_str(kind);
+        key.push(':');
+        key.push_str(id);
+        entity_stats(history, &key, t, claim_h, claimant_h, &mut seen)
+    };
 
     v[F::AmountRatio as usize] = claim.claimed_amount / claim.sum_insured;
     v[F::LogAmount as usize] = claim.claimed_amount.ln_1p();
@@ -307,18 +341,18 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
     v[F::NewPolicyLoss as usize] = b(v[F::DaysPolicyToLoss as usize] < 30.0);
     v[F::LateReport as usize] = b(v[F::DaysLossToReport as usize] > 30.0);
 
-    let c = stats(format!("claimant:{}", claim.claimant_id));
+    let c = stats("claimant", &claim.claimant_id);
     v[F::ClaimantShort as usize] = c.short;
     v[F::ClaimantLong as usize] = c.long;
     v[F::ClaimantAmountLong as usize] = c.amount_long.ln_1p();
-    v[F::PolicyLong as usize] = stats(format!("policy:{}", claim.policy_id)).long;
+    v[F::PolicyLong as usize] = stats("policy", &claim.policy_id).long;
 
     let mut by_role = |role: Role| {
         claim
             .parties
             .iter()
             .filter(|p| p.role == role)
-            .map(|p| stats(format!("{}:{}", role.as_str(), p.id)))
+            .map(|p| stats(role.as_str(), &p.id))
             .fold(EntityStats::default(), EntityStats::max)
     };
     let r = by_role(Role::Repairer);
@@ -336,7 +370,7 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
     v[F::WitnessLong as usize] = by_role(Role::Witness).long;
 
     if let Some(addr) = &claim.address_id {
-        let s = stats(format!("address:{addr}"));
+        let s = stats("address", addr);
         v[F::AddressLong as usize] = s.long;
         v[F::AddressClaimants as usize] = s.other_claimants_long;
     }

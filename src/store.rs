@@ -307,6 +307,14 @@ pub struct Store {
     outcome_revisions: sled::Tree,
     holds: sled::Tree,
     pub flusher: Arc<Flusher>,
+    /// Items in each queue (by [`Queue::ALL`] position), counted once at open and kept by
+    /// every write that adds or removes an item: sled's own count is a full scan, and an
+    /// intake that counted its queue on every decision slowed down as the queue grew.
+    depths: Arc<[std::sync::atomic::AtomicI64; 4]>,
+}
+
+fn queue_index(q: Queue) -> usize {
+    Queue::ALL.iter().position(|x| *x == q).unwrap_or(0)
 }
 
 /// What an intake did.
@@ -340,7 +348,28 @@ impl Store {
             holds: db.open_tree("holds")?,
             db,
             flusher: Flusher::new(),
-        })
+            depths: Arc::default(),
+        }
+        .with_counted_depths())
+    }
+
+    fn with_counted_depths(self) -> Store {
+        for q in Queue::ALL {
+            self.depths[queue_index(q)].store(self.count_queue(q) as i64, Ordering::SeqCst);
+        }
+        self
+    }
+
+    fn adjust_depth(&self, q: Queue, by: i64) {
+        self.depths[queue_index(q)].fetch_add(by, Ordering::SeqCst);
+    }
+
+    /// Items in a queue, counted by scanning the store (what [`Store::queue_depth`] keeps
+    /// without scanning; tests compare the two).
+    pub fn count_queue(&self, queue: Queue) -> usize {
+        self.queue_rank
+            .scan_prefix(sep(&[queue.as_str().as_bytes(), &[]]))
+            .count()
     }
 
     /// Start the group-commit loop (needs a tokio runtime).
@@ -396,7 +425,7 @@ impl Store {
         });
         let record = encode(rec);
         let item_bytes = item.map(encode);
-        (
+        let removed = (
             &self.claims,
             &self.revisions,
             &self.history,
@@ -407,8 +436,9 @@ impl Store {
                 for (entity, e) in &old_events {
                     history.remove(history_key(entity, e.at, e.claim))?;
                 }
+                let mut removed = false;
                 if let Some(p) = previous {
-                    items.remove(item_key(p.queue, &p.claim_id))?;
+                    removed = items.remove(item_key(p.queue, &p.claim_id))?.is_some();
                     rank.remove(rank_key(p.queue, p.priority, &p.claim_id))?;
                 }
                 for (entity, e) in &new_events {
@@ -423,8 +453,14 @@ impl Store {
                     items.insert(item_key(it.queue, &it.claim_id), bytes.as_slice())?;
                     rank.insert(rank_key(it.queue, it.priority, &it.claim_id), &[][..])?;
                 }
-                Ok::<(), ConflictableTransactionError<String>>(())
+                Ok::<bool, ConflictableTransactionError<String>>(removed)
             })?;
+        if let (true, Some(p)) = (removed, previous) {
+            self.adjust_depth(p.queue, -1);
+        }
+        if let Some(it) = item {
+            self.adjust_depth(it.queue, 1);
+        }
         Ok(())
     }
 
@@ -440,9 +476,9 @@ impl Store {
     }
 
     pub fn queue_depth(&self, queue: Queue) -> usize {
-        self.queue_rank
-            .scan_prefix(sep(&[queue.as_str().as_bytes(), &[]]))
-            .count()
+        self.depths[queue_index(queue)]
+            .load(Ordering::SeqCst)
+            .max(0) as usize
     }
 
     /// Items of a queue in priority order, `offset` skipped, at most `limit`.
@@ -556,7 +592,7 @@ impl Store {
         decision: &DecisionRecord,
     ) -> Result<(), StoreError> {
         let bytes = encode(rec);
-        (
+        let removed = (
             &self.outcomes,
             &self.outcome_revisions,
             &self.queue_items,
@@ -565,14 +601,19 @@ impl Store {
             .transaction(|(outcomes, revisions, items, rank)| {
                 outcomes.insert(rec.claim_id.as_bytes(), bytes.as_slice())?;
                 revisions.insert(revision_key(&rec.claim_id, rec.revision), bytes.as_slice())?;
-                items.remove(item_key(decision.queue, &decision.claim_id))?;
+                let removed = items
+                    .remove(item_key(decision.queue, &decision.claim_id))?
+                    .is_some();
                 rank.remove(rank_key(
                     decision.queue,
                     decision.priority,
                     &decision.claim_id,
                 ))?;
-                Ok::<(), ConflictableTransactionError<String>>(())
+                Ok::<bool, ConflictableTransactionError<String>>(removed)
             })?;
+        if removed {
+            self.adjust_depth(decision.queue, -1);
+        }
         Ok(())
     }
 
@@ -689,14 +730,15 @@ impl Store {
                         out_revs.remove(k)?;
                     }
                     outcomes.remove(claim_id.as_bytes())?;
+                    let mut dequeued = false;
                     if let Some(r) = &latest {
                         for (entity, e) in &events {
                             history.remove(history_key(entity, e.at, e.claim))?;
                         }
-                        items.remove(item_key(r.queue, claim_id))?;
+                        dequeued = items.remove(item_key(r.queue, claim_id))?.is_some();
                         rank.remove(rank_key(r.queue, r.priority, claim_id))?;
                     }
-                    Ok(())
+                    Ok(dequeued)
                 },
             )
             .map_or_else(
@@ -704,7 +746,12 @@ impl Store {
                     TransactionError::Abort(_) => Ok(None),
                     TransactionError::Storage(s) => Err(StoreError::Sled(s)),
                 },
-                |()| Ok(Some(removed)),
+                |dequeued| {
+                    if let (true, Some(r)) = (dequeued, &latest) {
+                        self.adjust_depth(r.queue, -1);
+                    }
+                    Ok(Some(removed))
+                },
             )
     }
 

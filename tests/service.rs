@@ -857,6 +857,7 @@ async fn confusion_counts_by_week_match_an_independent_count() {
         .find(|r| r.claim.claim_id == any.claim.claim_id)
         .unwrap();
     assert_eq!(changed.outcome, Some(weir::feedback::Outcome::Withdrawn));
+    assert_depths_match(&svc);
 }
 
 fn iso(t: chrono::DateTime<chrono::Utc>) -> String {
@@ -1680,6 +1681,17 @@ fn acknowledged_writes_survive_sigkill() {
     let _ = child.wait();
 }
 
+/// The queue depths the store keeps without scanning equal a scan of the queues.
+fn assert_depths_match(svc: &Service) {
+    for q in Queue::ALL {
+        assert_eq!(
+            svc.store.queue_depth(q),
+            svc.store.count_queue(q),
+            "kept depth of {q} differs from a scan"
+        );
+    }
+}
+
 /// One key per role (named after the role) and the app serving with those keys.
 fn app_with_keys(
     svc: &Service,
@@ -2116,6 +2128,7 @@ async fn retention_purges_everything_but_legal_holds_and_claimant_export_finds_a
     let r = svc.purge(30, later).await.unwrap();
     assert_eq!(r.purged_claims, 1);
     assert_eq!(svc.store.tree_sizes(), [0; 8]);
+    assert_depths_match(&svc);
 }
 
 /// An administrator replaces the rule set; a broken rule file is refused with its line and the

@@ -128,7 +128,7 @@ def features(c, h):
 def load_model(path):
     a = json.load(open(path))
     clf = a["classifier"]
-    if clf["kind"] != "logistic":
+    if clf["kind"] != "logistic_regression":
         raise SystemExit("the reference service reproduces logistic-regression models only")
     lr = LogisticRegression()
     lr.classes_ = np.array([0, 1])

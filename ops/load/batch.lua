@@ -4,7 +4,7 @@ dofile(os.getenv("LOAD_DIR") .. "/single.lua")
 local batch = tonumber(os.getenv("BATCH") or "1000")
 local bheaders = {
   ["Content-Type"] = "application/x-ndjson",
-  ["Authorization"] = "Bearer " .. (os.getenv("WEIR_KEY") or ""),
+  ["Authorization"] = "Bearer " .. (os.getenv("LOAD_KEY") or ""),
 }
 local n = 0
 

@@ -15,6 +15,7 @@ cd "$(dirname "$0")/../.."
 DURATION=${DURATION:-20}
 CONNECTIONS=${CONNECTIONS:-64}
 BATCH=${BATCH:-1000}
+BATCH_CONNECTIONS=${BATCH_CONNECTIONS:-4}
 PORT=${PORT:-18080}
 BARE_PORT=${BARE_PORT:-18081}
 PY_PORT=${PY_PORT:-18082}
@@ -34,11 +35,13 @@ trap cleanup EXIT
 cargo build --release --quiet --bin weir --example bare_axum
 WEIR=target/release/weir
 
-# A model trained on the demo scenario.
+# A logistic-regression model trained on the demo scenario (the Python reference service can
+# reproduce that one exactly).
 $WEIR demo-data --out "$WORK/data" --claims 20000 --seed 1 >/dev/null
-$WEIR train --data "$WORK/data/claims.ndjson" --out "$WORK/model.json" >/dev/null
+printf '[training.trees]\nenabled = false\n' > "$WORK/train.toml"
+$WEIR train --data "$WORK/data/claims.ndjson" --out "$WORK/model.json" --config "$WORK/train.toml" >/dev/null
 KEY=$($WEIR keys add --file "$WORK/keys.toml" --name load-intake --role claims_system 2>/dev/null)
-export WEIR_KEY=$KEY
+export LOAD_KEY=$KEY
 
 cat > "$WORK/weir.toml" <<EOF
 [server]
@@ -66,15 +69,16 @@ wait_port() {
     sleep 0.1
   done
   echo "nothing listening on $1" >&2
+  cat "$WORK"/*.log >&2 2>/dev/null || true
   return 1
 }
 
-# run NAME PID URL SCRIPT PER_REQUEST: prints one result line.
+# run NAME PID URL SCRIPT PER_REQUEST [CONNECTIONS]: prints one result line.
 run() {
-  local name=$1 pid=$2 url=$3 script=$4 per=$5
+  local name=$1 pid=$2 url=$3 script=$4 per=$5 conns=${6:-$CONNECTIONS}
   local c0 out c1 rps p50 p99 non2xx
   c0=$(cpu_seconds "$pid")
-  out=$(RUN_ID="$name-$RANDOM" wrk -t2 -c"$CONNECTIONS" -d"${DURATION}s" --latency -s "$script" "$url")
+  out=$(RUN_ID="$name-$RANDOM" wrk -t2 -c"$conns" -d"${DURATION}s" --latency -s "$script" "$url")
   c1=$(cpu_seconds "$pid")
   rps=$(awk '/^Requests\/sec/ {print $2}' <<<"$out")
   p50=$(awk '$1 == "50%" {print $2}' <<<"$out")
@@ -87,13 +91,13 @@ run() {
   echo "$name $(awk -v r="$rps" -v p="$per" 'BEGIN {print r * p}')" >> "$WORK/results"
 }
 
-echo "machine: $(nproc) cores, $(awk '/MemTotal/ {printf "%.0f GiB", $2/1048576}' /proc/meminfo); wrk -t2 -c$CONNECTIONS -d${DURATION}s; $(date -u +%F)"
+echo "machine: $(nproc) cores, $(awk '/MemTotal/ {printf "%.0f GiB", $2/1048576}' /proc/meminfo); wrk -t2 -d${DURATION}s, $CONNECTIONS connections (batches: $BATCH_CONNECTIONS); $(date -u +%F)"
 
 $WEIR serve --config "$WORK/weir.toml" >/dev/null 2>"$WORK/serve.log" &
 WPID=$!; PIDS+=("$WPID")
 wait_port "$PORT"
 run "weir single (durable)" "$WPID" "http://127.0.0.1:$PORT" "$LOAD_DIR/single.lua" 1
-run "weir batch x$BATCH (durable)" "$WPID" "http://127.0.0.1:$PORT" "$LOAD_DIR/batch.lua" "$BATCH"
+run "weir batch x$BATCH (durable)" "$WPID" "http://127.0.0.1:$PORT" "$LOAD_DIR/batch.lua" "$BATCH" "$BATCH_CONNECTIONS"
 CLAIMS=$(curl -s "http://127.0.0.1:$PORT/readyz" | sed -E 's/.*"claims":([0-9]+).*/\1/')
 echo "weir store now holds $CLAIMS claims; flushes: $(curl -s "http://127.0.0.1:$PORT/metrics" | awk '/^weir_store_flush_seconds_count/ {print $2}')"
 kill "$WPID"; wait "$WPID" 2>/dev/null || true
@@ -102,7 +106,7 @@ target/release/examples/bare_axum "127.0.0.1:$BARE_PORT" >/dev/null &
 BPID=$!; PIDS+=("$BPID")
 wait_port "$BARE_PORT"
 run "bare axum single" "$BPID" "http://127.0.0.1:$BARE_PORT" "$LOAD_DIR/single.lua" 1
-run "bare axum batch x$BATCH" "$BPID" "http://127.0.0.1:$BARE_PORT" "$LOAD_DIR/batch.lua" "$BATCH"
+run "bare axum batch x$BATCH" "$BPID" "http://127.0.0.1:$BARE_PORT" "$LOAD_DIR/batch.lua" "$BATCH" "$BATCH_CONNECTIONS"
 kill "$BPID"; wait "$BPID" 2>/dev/null || true
 
 if [ "${PYTHON_REFERENCE:-0}" = 1 ]; then

@@ -1,6 +1,6 @@
 -- wrk script: one claim per request, each with a new claim id; claimants, repairers and payee
 -- accounts repeat across claims so that history lookups find something, as in real traffic.
--- The API key comes from the environment (WEIR_KEY); the bare ceiling server ignores it.
+-- The API key comes from the environment (LOAD_KEY); the bare ceiling server ignores it.
 local counter = 0
 tid = tid or 0 -- set per thread by setup()
 local threads = {}
@@ -10,7 +10,7 @@ function setup(thread)
   table.insert(threads, thread)
 end
 
-local key = os.getenv("WEIR_KEY") or ""
+local key = os.getenv("LOAD_KEY") or ""
 local run = os.getenv("RUN_ID") or "r"
 local headers = {
   ["Content-Type"] = "application/json",

@@ -528,6 +528,35 @@ pub fn generate(n: usize, seed: u64) -> Vec<DemoClaim> {
     out
 }
 
+/// Periods of [`generate`] kept at its usual density: the demo generator fits any number of
+/// claims into at most 545 days, so a million claims would put thousands of claims a year on
+/// each invented repairer, which no book of that size has. For scale benchmarks this joins
+/// 18,000-claim periods end to end (each with its own seed, and claim, claimant and policy ids
+/// prefixed by the period), so the book grows in time, not in density. Repairers, providers
+/// and the other shared parties stay the same pool across periods.
+pub fn generate_long(n: usize, seed: u64) -> Vec<DemoClaim> {
+    const PERIOD: usize = 18_000;
+    let mut out = Vec::with_capacity(n);
+    let mut i = 0u64;
+    while out.len() < n {
+        let mut part = generate(PERIOD.min(n - out.len()).max(1000), seed + i);
+        let shift = chrono::Days::new(i * 545);
+        for d in &mut part {
+            let c = &mut d.claim;
+            c.claim_id = format!("{i}-{}", c.claim_id);
+            c.claimant_id = format!("{i}-{}", c.claimant_id);
+            c.policy_id = format!("{i}-{}", c.policy_id);
+            c.loss_date = c.loss_date + shift;
+            c.policy_start = c.policy_start + shift;
+            c.reported_at = c.reported_at + shift;
+        }
+        part.truncate(n - out.len());
+        out.extend(part);
+        i += 1;
+    }
+    out
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -557,33 +586,4 @@ mod tests {
         let again = generate(3000, 7);
         assert_eq!(again[1234].claim, claims[1234].claim);
     }
-}
-
-/// Periods of [`generate`] kept at its usual density: the demo generator fits any number of
-/// claims into at most 545 days, so a million claims would put thousands of claims a year on
-/// each invented repairer, which no book of that size has. For scale benchmarks this joins
-/// 18,000-claim periods end to end (each with its own seed, and claim, claimant and policy ids
-/// prefixed by the period), so the book grows in time, not in density. Repairers, providers
-/// and the other shared parties stay the same pool across periods.
-pub fn generate_long(n: usize, seed: u64) -> Vec<DemoClaim> {
-    const PERIOD: usize = 18_000;
-    let mut out = Vec::with_capacity(n);
-    let mut i = 0u64;
-    while out.len() < n {
-        let mut part = generate(PERIOD.min(n - out.len()).max(1000), seed + i);
-        let shift = chrono::Days::new(i * 545);
-        for d in &mut part {
-            let c = &mut d.claim;
-            c.claim_id = format!("{i}-{}", c.claim_id);
-            c.claimant_id = format!("{i}-{}", c.claimant_id);
-            c.policy_id = format!("{i}-{}", c.policy_id);
-            c.loss_date = c.loss_date + shift;
-            c.policy_start = c.policy_start + shift;
-            c.reported_at = c.reported_at + shift;
-        }
-        part.truncate(n - out.len());
-        out.extend(part);
-        i += 1;
-    }
-    out
 }

@@ -92,9 +92,10 @@ pub fn required_roles(method: &str, path: &str) -> &'static [Role] {
 }
 
 #[derive(Clone)]
-struct AppState {
-    svc: Service,
-    settings: Arc<HttpSettings>,
+pub(crate) struct AppState {
+    pub(crate) svc: Service,
+    pub(crate) settings: Arc<HttpSettings>,
+    pub(crate) sessions: Arc<crate::web::Sessions>,
 }
 
 /// Every error the API can answer with. One mapping to HTTP, no catch-all: a new variant must
@@ -464,7 +465,7 @@ fn handle_line(
     }
 }
 
-fn check_id(field: &str, id: &str) -> Result<(), AppError> {
+pub(crate) fn check_id(field: &str, id: &str) -> Result<(), AppError> {
     let ok = !id.is_empty()
         && id.len() <= crate::claim::MAX_STRING_BYTES
         && !id.chars().any(char::is_control);
@@ -564,7 +565,7 @@ async fn get_claim(
     Ok(Json(view).into_response())
 }
 
-fn queue_param(name: &str) -> Result<Queue, AppError> {
+pub(crate) fn queue_param(name: &str) -> Result<Queue, AppError> {
     match Queue::parse(name) {
         Some(q) if q != Queue::NoReview => Ok(q),
         _ => Err(AppError::NotFound {
@@ -1163,6 +1164,7 @@ pub fn app(svc: Service, settings: HttpSettings) -> Router {
     let state = AppState {
         svc,
         settings: Arc::new(settings),
+        sessions: Arc::default(),
     };
     // Operations routes stay answerable under any load.
     let ops = Router::new()
@@ -1213,6 +1215,7 @@ pub fn app(svc: Service, settings: HttpSettings) -> Router {
         .merge(ops)
         .merge(api)
         .merge(batch)
+        .merge(crate::web::routes())
         .fallback(not_found)
         .method_not_allowed_fallback(method_not_allowed)
         .layer(middleware::from_fn_with_state(state.clone(), request_id))

@@ -51,3 +51,4 @@ pub mod service;
 pub mod store;
 pub mod telemetry;
 pub mod train;
+pub mod web;

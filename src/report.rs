@@ -25,7 +25,7 @@ pub struct ReportData {
     pub daily_capacity: f64,
 }
 
-fn esc(s: &str) -> String {
+pub(crate) fn esc(s: &str) -> String {
     s.replace('&', "&amp;")
         .replace('<', "&lt;")
         .replace('>', "&gt;")
@@ -347,6 +347,17 @@ fn pct(x: Option<f64>) -> String {
 
 /// The report as one HTML document.
 pub fn render(d: &ReportData) -> String {
+    let mut out = String::new();
+    out.push_str("<!DOCTYPE html>\n<html xmlns=\"http://www.w3.org/1999/xhtml\" lang=\"en\"><head><meta charset=\"utf-8\"/><meta name=\"viewport\" content=\"width=device-width, initial-scale=1\"/><title>weir monitoring report</title><style>body{font-family:system-ui,sans-serif;max-width:1200px;margin:1.5rem auto;padding:0 1rem;color:#1d1d1d;background:#fbfaf7}h1{font-size:1.5rem}h2{font-size:1.1rem;margin-top:0}.caution{border-left:4px solid #b8520f;background:#fff4ea;padding:.6rem 1rem}.grid{display:grid;grid-template-columns:repeat(auto-fit,minmax(560px,1fr));gap:1.2rem}figure{margin:0;background:#fff;border:1px solid #ddd;padding:.8rem}svg{max-width:100%;height:auto}table{border-collapse:collapse}td,th{padding:.2rem .6rem;border-bottom:1px solid #ddd;text-align:left}</style></head><body>");
+    out.push_str("<h1>weir monitoring report</h1><p class=\"caution\">A referral is a prompt for human review, not a finding of fraud. Payment decisions follow the insurer's own procedures, fair claims handling rules and the law where it operates.</p>");
+    out.push_str(&render_body(d));
+    out.push_str("</body></html>\n");
+    out
+}
+
+/// The report's summary table, charts and notes, as an HTML fragment (the web monitoring page
+/// shows the same).
+pub fn render_body(d: &ReportData) -> String {
     let auc = metrics::roc_auc(&d.scores, &d.labels);
     let curve = metrics::roc_curve(&d.scores, &d.labels);
     let calib = metrics::calibration_table(&d.scores, &d.labels, 10);
@@ -366,10 +377,9 @@ pub fn render(d: &ReportData) -> String {
     let vol: Vec<(String, u64)> = weeks.iter().map(|(w, v)| (w.clone(), v.2)).collect();
 
     let mut out = String::new();
-    out.push_str("<!DOCTYPE html>\n<html xmlns=\"http://www.w3.org/1999/xhtml\" lang=\"en\"><head><meta charset=\"utf-8\"/><meta name=\"viewport\" content=\"width=device-width, initial-scale=1\"/><title>weir monitoring report</title><style>body{font-family:system-ui,sans-serif;max-width:1200px;margin:1.5rem auto;padding:0 1rem;color:#1d1d1d;background:#fbfaf7}h1{font-size:1.5rem}h2{font-size:1.1rem;margin-top:0}.caution{border-left:4px solid #b8520f;background:#fff4ea;padding:.6rem 1rem}.grid{display:grid;grid-template-columns:repeat(auto-fit,minmax(560px,1fr));gap:1.2rem}figure{margin:0;background:#fff;border:1px solid #ddd;padding:.8rem}svg{max-width:100%;height:auto}table{border-collapse:collapse}td,th{padding:.2rem .6rem;border-bottom:1px solid #ddd;text-align:left}</style></head><body>");
     let _ = write!(
         out,
-        "<h1>weir monitoring report</h1><p class=\"caution\">A referral is a prompt for human review, not a finding of fraud. Payment decisions follow the insurer's own procedures, fair claims handling rules and the law where it operates.</p><table><tr><th>generated</th><td>{}</td></tr><tr><th>champion model</th><td>{}</td></tr><tr><th>rules</th><td>{}</td></tr><tr><th>adjudicated claims</th><td>{} ({} referral-worthy)</td></tr><tr><th>ROC AUC on adjudicated claims</th><td>{}</td></tr><tr><th>precision of referrals</th><td>{} (95% Wilson interval {})</td></tr><tr><th>referrals awaiting an outcome</th><td>{}</td></tr><tr><th>recall (audit sample)</th><td>{} (95% interval from the audit sample {})</td></tr></table><p>{}</p>",
+        "<table><tr><th>generated</th><td>{}</td></tr><tr><th>champion model</th><td>{}</td></tr><tr><th>rules</th><td>{}</td></tr><tr><th>adjudicated claims</th><td>{} ({} referral-worthy)</td></tr><tr><th>ROC AUC on adjudicated claims</th><td>{}</td></tr><tr><th>precision of referrals</th><td>{} (95% Wilson interval {})</td></tr><tr><th>referrals awaiting an outcome</th><td>{}</td></tr><tr><th>recall (audit sample)</th><td>{} (95% interval from the audit sample {})</td></tr></table><p>{}</p>",
         esc(&d.generated_at),
         esc(&d.model_version),
         esc(&d.rules_version),
@@ -418,7 +428,7 @@ pub fn render(d: &ReportData) -> String {
     out.push_str("</figure>");
     let _ = writeln!(
         out,
-        "</div><p>PSI reading bands: {}. Drift window: claims decided in the last {} days ({} claims).</p></body></html>",
+        "</div><p>PSI reading bands: {}. Drift window: claims decided in the last {} days ({} claims).</p>",
         esc(&d.drift.bands),
         d.drift.window_days,
         d.drift.claims_in_window

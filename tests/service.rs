@@ -2319,3 +2319,124 @@ fn load_is_shed_not_queued_and_nothing_is_lost_or_doubled() {
     child.kill().unwrap();
     let _ = child.wait();
 }
+
+/// The web pages: no session → the sign-in page; a wrong key → 401; a session → the page for
+/// its role only; a form without the session's token → refused and nothing leased.
+#[tokio::test]
+async fn web_pages_need_a_session_a_role_and_the_form_token() {
+    use weir::access::Role;
+    let dir = tempdir("web");
+    let svc = service(&dir);
+    let (app, keys) = app_with_keys(&svc, 0);
+    let body = serde_json::to_vec(&claim("W-1")).unwrap();
+    let cs = Some(keys[&Role::ClaimsSystem].as_str());
+    let (status, _, d) = call_as(
+        &app,
+        cs,
+        Method::POST,
+        "/v1/claims",
+        Some("application/json"),
+        body,
+    )
+    .await;
+    assert_eq!(status, StatusCode::CREATED, "{d}");
+
+    let send = |method: Method, uri: &str, cookie: Option<&str>, form: Option<String>| {
+        let mut req = Request::builder().method(method).uri(uri);
+        if let Some(c) = cookie {
+            req = req.header("cookie", c);
+        }
+        if form.is_some() {
+            req = req.header("content-type", "application/x-www-form-urlencoded");
+        }
+        let req = req.body(Body::from(form.unwrap_or_default())).unwrap();
+        let app = app.clone();
+        async move {
+            let r = app.oneshot(req).await.unwrap();
+            let status = r.status();
+            let headers = r.headers().clone();
+            let bytes = r.into_body().collect().await.unwrap().to_bytes();
+            (
+                status,
+                headers,
+                String::from_utf8_lossy(&bytes).into_owned(),
+            )
+        }
+    };
+    let (status, headers, _) = send(Method::GET, "/ui/queues", None, None).await;
+    assert_eq!(status, StatusCode::SEE_OTHER);
+    assert_eq!(headers["location"], "/ui/login");
+    let (status, _, page) = send(
+        Method::POST,
+        "/ui/login",
+        None,
+        Some("key=weir_nope".into()),
+    )
+    .await;
+    assert_eq!(status, StatusCode::UNAUTHORIZED);
+    assert!(page.contains("not recognised"));
+
+    let login = |role: Role| {
+        let form = format!("key={}", keys[&role]);
+        let send = &send;
+        async move {
+            let (status, headers, _) = send(Method::POST, "/ui/login", None, Some(form)).await;
+            assert_eq!(status, StatusCode::SEE_OTHER);
+            let cookie = headers["set-cookie"].to_str().unwrap().to_string();
+            assert!(
+                cookie.contains("HttpOnly") && cookie.contains("SameSite=Strict"),
+                "{cookie}"
+            );
+            cookie.split(';').next().unwrap().to_string()
+        }
+    };
+    let inv = login(Role::Investigator).await;
+    let (status, _, page) = send(Method::GET, "/ui/queues", Some(&inv), None).await;
+    assert_eq!(status, StatusCode::OK);
+    assert!(page.contains("A referral is a prompt for human review"));
+    let (status, _, _) = send(Method::GET, "/ui/monitoring", Some(&inv), None).await;
+    assert_eq!(status, StatusCode::FORBIDDEN);
+    let (status, _, page) = send(Method::GET, "/ui/claims/W-1", Some(&inv), None).await;
+    assert_eq!(status, StatusCode::OK);
+    assert!(page.contains("Record outcome"));
+
+    let before = svc.store.tree_sizes();
+    let queue = d["queue"].as_str().unwrap();
+    let lease_uri = format!("/ui/queues/{queue}/lease");
+    let (status, _, _) = send(
+        Method::POST,
+        &lease_uri,
+        Some(&inv),
+        Some("csrf=forged".into()),
+    )
+    .await;
+    assert_eq!(status, StatusCode::FORBIDDEN, "a forged form is refused");
+    let (status, _, _) = send(
+        Method::POST,
+        "/ui/claims/W-1/outcome",
+        Some(&inv),
+        Some("csrf=forged&outcome=genuine&adjudicated_on=2025-05-01&decided_by=x".into()),
+    )
+    .await;
+    assert_eq!(status, StatusCode::FORBIDDEN);
+    assert_eq!(
+        svc.store.tree_sizes(),
+        before,
+        "a refused form changed nothing"
+    );
+    assert!(svc.store.outcome("W-1").unwrap().is_none());
+
+    // A claims system has no page; an analyst reads monitoring but cannot post outcomes.
+    let cs_cookie = login(Role::ClaimsSystem).await;
+    let (status, _, _) = send(Method::GET, "/ui/claims/W-1", Some(&cs_cookie), None).await;
+    assert_eq!(status, StatusCode::FORBIDDEN);
+    let ana = login(Role::Analyst).await;
+    let (status, _, page) = send(Method::GET, "/ui/monitoring", Some(&ana), None).await;
+    assert_eq!(status, StatusCode::OK, "{page}");
+    let (status, _, page) = send(Method::GET, "/ui/claims/W-1", Some(&ana), None).await;
+    assert_eq!(status, StatusCode::OK);
+    assert!(
+        !page.contains("Record outcome"),
+        "analysts read claims but post no outcomes"
+    );
+}

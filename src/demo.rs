@@ -181,7 +181,13 @@ pub async fn run(o: DemoOptions) -> Result<()> {
     }
     // Investigators close the referred and audited cases: the demo posts each one's
     // ground-truth outcome, as the adjudication would have found it, 30 days after the report.
+    // The most recent twentieth of the claims stays under investigation, so the queues (and
+    // the web pages, with --keep-serving) still have work in them.
+    let mut times: Vec<_> = claims.iter().map(|c| c.claim.reported_at).collect();
+    times.sort();
+    let still_open_from = times[times.len() * 19 / 20];
     let mut posted = 0;
+    let mut left_open = 0;
     for line in reply.body.split(|&b| b == b'\n').filter(|l| !l.is_empty()) {
         let v: serde_json::Value = serde_json::from_slice(line)?;
         let (Some(id), Some(q)) = (v["claim_id"].as_str(), v["queue"].as_str()) else {
@@ -193,6 +199,10 @@ pub async fn run(o: DemoOptions) -> Result<()> {
         let Some(d) = claims.iter().find(|c| c.claim.claim_id == id) else {
             continue;
         };
+        if d.claim.reported_at >= still_open_from {
+            left_open += 1;
+            continue;
+        }
         let body = serde_json::json!({
             "outcome": d.outcome.as_str(),
             "adjudicated_on": (d.claim.reported_at.date_naive() + chrono::Days::new(30)).to_string(),
@@ -209,7 +219,7 @@ pub async fn run(o: DemoOptions) -> Result<()> {
     let q = analyst.get("/v1/monitor/quality").await?.json()?;
     let p = &q["precision"];
     println!(
-        "\n6. posted {posted} adjudicated outcomes for the referred and audited claims; precision of referrals {:.1}% (95% interval {:.1}% to {:.1}%, {} adjudicated referrals)",
+        "\n6. posted {posted} adjudicated outcomes for the referred and audited claims ({left_open} recent ones left open in the queues); precision of referrals {:.1}% (95% interval {:.1}% to {:.1}%, {} adjudicated referrals)",
         p["precision"].as_f64().unwrap_or(f64::NAN) * 100.0,
         p["interval"][0].as_f64().unwrap_or(f64::NAN) * 100.0,
         p["interval"][1].as_f64().unwrap_or(f64::NAN) * 100.0,
@@ -240,7 +250,8 @@ pub async fn run(o: DemoOptions) -> Result<()> {
 
     if o.keep_serving {
         println!(
-            "\nserving on http://{addr} until Ctrl-C; try\n  curl -H \"Authorization: Bearer $(grep investigator {} | cut -f2)\" http://{addr}/v1/queues",
+            "\nserving on http://{addr} until Ctrl-C. In a browser: http://{addr}/ui (sign in with the investigator or analyst key from {}). With curl:\n  curl -H \"Authorization: Bearer $(grep investigator {} | cut -f2)\" http://{addr}/v1/queues",
+            key_list.display(),
             key_list.display()
         );
         crate::server::shutdown_signal().await;

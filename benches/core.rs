@@ -133,21 +133,24 @@ fn scoring(c: &mut Criterion) {
     g.finish();
 }
 
-/// The standardised feature matrix and labels of `n` invented claims.
+/// The standardised feature matrix and labels of `n` invented claims, featurised in time
+/// order by the training code itself (`train::featurise`).
 pub fn matrix(n: usize) -> (Array2<f64>, Vec<bool>) {
-    let demo = weir::demo_data::generate_long(n, 11);
-    let mut history = MemoryHistory::new();
-    let mut x = Array2::<f64>::zeros((demo.len(), N_FEATURES));
-    let mut y = Vec::with_capacity(demo.len());
-    for (r, d) in demo.iter().enumerate() {
-        let fv = features::compute(&d.claim, &history);
-        history.record(&d.claim);
-        x.row_mut(r)
-            .iter_mut()
-            .zip(fv.iter())
-            .for_each(|(o, v)| *o = *v);
-        y.push(d.outcome.label().unwrap_or(false));
-    }
+    let mut rows: Vec<train::TrainingRow> = weir::demo_data::generate_long(n, 11)
+        .into_iter()
+        .enumerate()
+        .map(|(i, d)| train::TrainingRow {
+            line: i + 1,
+            claim: d.claim,
+            outcome: Some(d.outcome),
+        })
+        .collect();
+    let fvs = train::featurise(&mut rows, false);
+    let x = Array2::from_shape_fn((fvs.len(), N_FEATURES), |(r, c)| fvs[r][c]);
+    let y = rows
+        .iter()
+        .map(|r| r.outcome.and_then(|o| o.label()).unwrap_or(false))
+        .collect();
     let s = Standardiser::fit(x.view());
     (s.apply(x.view()), y)
 }

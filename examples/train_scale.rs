@@ -13,9 +13,10 @@
 use ndarray::Array2;
 use std::io::Write;
 use std::time::Instant;
-use weir::features::{self, MemoryHistory, N_FEATURES};
+use weir::features::N_FEATURES;
 use weir::model::{Logistic, Standardiser, TreeSettings, Trees};
 use weir::outliers::{KMeansSettings, OutlierModel};
+use weir::train::TrainingRow;
 
 fn peak_rss_mb() -> f64 {
     std::fs::read_to_string("/proc/self/status")
@@ -40,26 +41,30 @@ fn main() -> anyhow::Result<()> {
     let pipeline = !args.iter().any(|a| a == "--no-pipeline");
 
     let t = Instant::now();
-    let demo = weir::demo_data::generate_long(n, 11);
+    let mut rows: Vec<TrainingRow> = weir::demo_data::generate_long(n, 11)
+        .into_iter()
+        .enumerate()
+        .map(|(i, d)| TrainingRow {
+            line: i + 1,
+            claim: d.claim,
+            outcome: Some(d.outcome),
+        })
+        .collect();
     println!(
         "generate {} claims: {:.1} s",
-        demo.len(),
+        rows.len(),
         t.elapsed().as_secs_f64()
     );
 
+    // Features in time order with history, by the training code itself.
     let t = Instant::now();
-    let mut history = MemoryHistory::new();
-    let mut x = Array2::<f64>::zeros((demo.len(), N_FEATURES));
-    let mut y = Vec::with_capacity(demo.len());
-    for (r, d) in demo.iter().enumerate() {
-        let fv = features::compute(&d.claim, &history);
-        history.record(&d.claim);
-        x.row_mut(r)
-            .iter_mut()
-            .zip(fv.iter())
-            .for_each(|(o, v)| *o = *v);
-        y.push(d.outcome.label().unwrap_or(false));
-    }
+    let fvs = weir::train::featurise(&mut rows, false);
+    let x = Array2::from_shape_fn((fvs.len(), N_FEATURES), |(r, c)| fvs[r][c]);
+    drop(fvs);
+    let y: Vec<bool> = rows
+        .iter()
+        .map(|r| r.outcome.and_then(|o| o.label()).unwrap_or(false))
+        .collect();
     let s = Standardiser::fit(x.view());
     let z = s.apply(x.view());
     drop(x);
@@ -125,15 +130,6 @@ fn main() -> anyhow::Result<()> {
 
     if pipeline {
         let t = Instant::now();
-        let rows = demo
-            .into_iter()
-            .enumerate()
-            .map(|(i, d)| weir::train::TrainingRow {
-                line: i + 1,
-                claim: d.claim,
-                outcome: Some(d.outcome),
-            })
-            .collect();
         let loaded = weir::train::Loaded {
             rows,
             lines_read: n,

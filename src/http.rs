@@ -39,6 +39,17 @@ pub struct HttpSettings {
     pub retention_check_hours: u32,
 }
 
+impl HttpSettings {
+    /// Reviews a day the referral queues (investigate and desk check) can take.
+    pub fn referral_capacity(&self) -> f64 {
+        self.capacities
+            .iter()
+            .filter(|(q, _)| matches!(q, Queue::Investigate | Queue::DeskCheck))
+            .map(|(_, c)| c)
+            .sum()
+    }
+}
+
 /// Which roles may call each route (method, path as routed). A route missing here is
 /// administrator-only, so forgetting an entry fails closed; a test checks that every
 /// documented operation has its entry. Operations routes (/healthz, /readyz, /metrics,
@@ -982,13 +993,7 @@ async fn monitor_compare(State(st): State<AppState>) -> Result<Response, AppErro
 /// The self-contained HTML monitoring report.
 async fn report(State(st): State<AppState>) -> Result<Response, AppError> {
     let svc = st.svc.clone();
-    let capacity: f64 = st
-        .settings
-        .capacities
-        .iter()
-        .filter(|(q, _)| matches!(q, Queue::Investigate | Queue::DeskCheck))
-        .map(|(_, c)| c)
-        .sum();
+    let capacity = st.settings.referral_capacity();
     let html = tokio::task::spawn_blocking(move || {
         svc.report_data(chrono::Utc::now(), capacity)
             .map(|d| crate::report::render(&d))

@@ -180,6 +180,27 @@ fn status_page(
     r
 }
 
+/// A server error, logged with its cause; the page says only that it failed.
+fn failed(who: (&Principal, &str), what: &str, cause: &dyn std::fmt::Display) -> Response {
+    tracing::error!(error = %cause, "{what} failed");
+    status_page(
+        StatusCode::INTERNAL_SERVER_ERROR,
+        "Error",
+        Some(who),
+        "<h1>Something went wrong</h1><p>It has been logged.</p>",
+    )
+}
+
+/// A form whose token is not the session's (forged, or from an earlier session).
+fn form_expired(who: (&Principal, &str), page: &str) -> Response {
+    status_page(
+        StatusCode::FORBIDDEN,
+        "Form expired",
+        Some(who),
+        &format!("<h1>Form expired</h1><p>Reload the {page} page and try again.</p>"),
+    )
+}
+
 fn session_id(headers: &HeaderMap) -> Option<String> {
     headers
         .get_all(header::COOKIE)
@@ -394,12 +415,7 @@ async fn lease_next(
         Err(r) => return r,
     };
     if !check_csrf(f.get("csrf"), &csrf) {
-        return status_page(
-            StatusCode::FORBIDDEN,
-            "Form expired",
-            Some((&p, &csrf)),
-            "<h1>Form expired</h1><p>Reload the queue page and try again.</p>",
-        );
+        return form_expired((&p, &csrf), "queue");
     }
     let Ok(queue) = queue_param(&name) else {
         return status_page(
@@ -421,15 +437,7 @@ async fn lease_next(
             Some((&p, &csrf)),
             "<h1>Nothing to take</h1><p>Every item in this queue is taken or the queue is empty. <a href=\"/ui/queues\">Back to the queues</a>.</p>",
         ),
-        Err(e) => {
-            tracing::error!(error = %e, "lease from the web page failed");
-            status_page(
-                StatusCode::INTERNAL_SERVER_ERROR,
-                "Error",
-                Some((&p, &csrf)),
-                "<h1>Something went wrong</h1><p>It has been logged.</p>",
-            )
-        }
+        Err(e) => failed((&p, &csrf), "lease from the web page", &e),
     }
 }
 
@@ -711,12 +719,7 @@ async fn post_outcome(
         Err(r) => return r,
     };
     if !check_csrf(f.get("csrf"), &csrf) {
-        return status_page(
-            StatusCode::FORBIDDEN,
-            "Form expired",
-            Some((&p, &csrf)),
-            "<h1>Form expired</h1><p>Reload the claim page and try again.</p>",
-        );
+        return form_expired((&p, &csrf), "claim");
     }
     // The form's strings become the API's JSON, so the API's validation applies unchanged.
     let mut v = serde_json::Map::new();
@@ -764,15 +767,7 @@ async fn post_outcome(
             Some((&p, &csrf)),
             "<h1>No such claim</h1>",
         ),
-        Err(e) => {
-            tracing::error!(error = %e, "outcome from the web page failed");
-            status_page(
-                StatusCode::INTERNAL_SERVER_ERROR,
-                "Error",
-                Some((&p, &csrf)),
-                "<h1>Something went wrong</h1><p>It has been logged.</p>",
-            )
-        }
+        Err(e) => failed((&p, &csrf), "outcome from the web page", &e),
     }
 }
 
@@ -782,13 +777,7 @@ async fn monitoring_page(State(st): State<AppState>, headers: HeaderMap) -> Resp
         Err(r) => return r,
     };
     let svc = st.svc.clone();
-    let capacity: f64 = st
-        .settings
-        .capacities
-        .iter()
-        .filter(|(q, _)| matches!(q, Queue::Investigate | Queue::DeskCheck))
-        .map(|(_, c)| c)
-        .sum();
+    let capacity = st.settings.referral_capacity();
     let built = tokio::task::spawn_blocking(move || {
         let now = chrono::Utc::now();
         let data = svc.report_data(now, capacity)?;
@@ -799,24 +788,8 @@ async fn monitoring_page(State(st): State<AppState>, headers: HeaderMap) -> Resp
     .await;
     let (data, fairness, compare) = match built {
         Ok(Ok(x)) => x,
-        Ok(Err(e)) => {
-            tracing::error!(error = %e, "monitoring page failed");
-            return status_page(
-                StatusCode::INTERNAL_SERVER_ERROR,
-                "Error",
-                Some((&p, &csrf)),
-                "<h1>Something went wrong</h1><p>It has been logged.</p>",
-            );
-        }
-        Err(e) => {
-            tracing::error!(error = %e, "monitoring page failed");
-            return status_page(
-                StatusCode::INTERNAL_SERVER_ERROR,
-                "Error",
-                Some((&p, &csrf)),
-                "<h1>Something went wrong</h1><p>It has been logged.</p>",
-            );
-        }
+        Ok(Err(e)) => return failed((&p, &csrf), "monitoring page", &e),
+        Err(e) => return failed((&p, &csrf), "monitoring page", &e),
     };
     let mut b = String::from("<h1>Monitoring</h1>");
     b.push_str(&crate::report::render_body(&data));

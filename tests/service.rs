@@ -96,25 +96,7 @@ async fn call(
     ct: Option<&str>,
     body: Vec<u8>,
 ) -> (StatusCode, String, Value) {
-    let mut req = Request::builder().method(method).uri(uri);
-    if let Some(ct) = ct {
-        req = req.header("content-type", ct);
-    }
-    let resp = app
-        .clone()
-        .oneshot(req.body(Body::from(body)).unwrap())
-        .await
-        .unwrap();
-    let status = resp.status();
-    let ctype = resp
-        .headers()
-        .get("content-type")
-        .map(|v| v.to_str().unwrap().to_string())
-        .unwrap_or_default();
-    let bytes = resp.into_body().collect().await.unwrap().to_bytes();
-    let v = serde_json::from_slice(&bytes)
-        .unwrap_or(Value::String(String::from_utf8_lossy(&bytes).into()));
-    (status, ctype, v)
+    call_as(app, None, method, uri, ct, body).await
 }
 
 async fn call_as(

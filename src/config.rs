@@ -146,17 +146,83 @@ impl Default for Server {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(default, deny_unknown_fields)]
 pub struct StoreConfig {
+    /// `sled` (embedded, one instance) or `postgres` (shared by several instances).
+    pub backend: StoreBackend,
     /// Folder of the embedded sled store.
     pub path: std::path::PathBuf,
     /// sled page cache, in MiB.
     pub cache_mb: u64,
+    /// PostgreSQL connection string (libpq key=value form or a `postgresql://` URL). Put the
+    /// password in `~/.pgpass` or a `WEIR_STORE_POSTGRES_URL` set by the service manager, not
+    /// in this file.
+    pub postgres_url: String,
+    /// Connections this instance keeps open to PostgreSQL.
+    pub postgres_pool: usize,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum StoreBackend {
+    Sled,
+    Postgres,
 }
 
 impl Default for StoreConfig {
     fn default() -> Self {
         StoreConfig {
+            backend: StoreBackend::Sled,
             path: "data/weir.sled".into(),
             cache_mb: 128,
+            postgres_url: "host=127.0.0.1 user=weir dbname=weir".into(),
+            postgres_pool: 8,
+        }
+    }
+}
+
+/// Claims taken from a NATS JetStream stream (off unless `enabled`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct StreamConfig {
+    pub enabled: bool,
+    /// NATS server addresses, comma-separated (`nats://host:4222,...`).
+    pub url: String,
+    /// The JetStream stream that holds filed claims (created when missing).
+    pub stream: String,
+    /// Subject claims are published on (the stream's subject).
+    pub subject: String,
+    /// Durable pull consumer shared by every instance.
+    pub consumer: String,
+    /// Subject each decision is published on (JSON, one message per decision).
+    pub decisions_subject: String,
+    /// Stream that keeps published decisions for downstream systems (created when missing).
+    pub decisions_stream: String,
+    /// Subject a message goes to when it cannot be decided, with the reason in headers.
+    pub dead_letter_subject: String,
+    /// Stream that keeps dead letters (created when missing).
+    pub dead_letter_stream: String,
+    /// Deliveries of one message before it goes to the dead-letter subject.
+    pub max_deliver: i64,
+    /// Seconds the stream waits for an acknowledgement before delivering again.
+    pub ack_wait_seconds: u64,
+    /// Claims this instance decides at the same time.
+    pub in_flight: usize,
+}
+
+impl Default for StreamConfig {
+    fn default() -> Self {
+        StreamConfig {
+            enabled: false,
+            url: "nats://127.0.0.1:4222".into(),
+            stream: "weir-claims".into(),
+            subject: "weir.claims.filed".into(),
+            consumer: "weir-scorers".into(),
+            decisions_subject: "weir.decisions".into(),
+            decisions_stream: "weir-decisions".into(),
+            dead_letter_subject: "weir.claims.undecidable".into(),
+            dead_letter_stream: "weir-undecidable".into(),
+            max_deliver: 5,
+            ack_wait_seconds: 30,
+            in_flight: 16,
         }
     }
 }
@@ -276,6 +342,7 @@ pub struct Config {
     pub training: Training,
     pub server: Server,
     pub store: StoreConfig,
+    pub stream: StreamConfig,
     pub paths: Paths,
     pub routing: crate::rules::Routing,
     pub queues: Queues,
@@ -359,6 +426,34 @@ impl Config {
         }
         if !(r.daily_capacity.is_finite() && r.daily_capacity > 0.0) {
             p.push("referral.daily_capacity: must be a finite number > 0".into());
+        }
+        if self.store.postgres_pool == 0 {
+            p.push("store.postgres_pool: must be at least 1".into());
+        }
+        let st = &self.stream;
+        if st.enabled {
+            if st.max_deliver < 1 {
+                p.push("stream.max_deliver: must be at least 1".into());
+            }
+            if st.in_flight == 0 {
+                p.push("stream.in_flight: must be at least 1".into());
+            }
+            if st.ack_wait_seconds == 0 {
+                p.push("stream.ack_wait_seconds: must be at least 1".into());
+            }
+            for (k, v) in [
+                ("stream.stream", &st.stream),
+                ("stream.consumer", &st.consumer),
+                ("stream.decisions_stream", &st.decisions_stream),
+                ("stream.dead_letter_stream", &st.dead_letter_stream),
+            ] {
+                // JetStream names: no spaces, dots, wildcards or path separators.
+                if v.is_empty() || v.chars().any(|c| " .*>/\\\t".contains(c)) {
+                    p.push(format!(
+                        "{k}: must be a non-empty name without spaces, dots, '*', '>' or slashes"
+                    ));
+                }
+            }
         }
         let t = &self.training;
         if !(t.test_share > 0.0 && t.test_share < 1.0) {

@@ -35,6 +35,12 @@ pub trait HistoryView {
     fn for_each_event(&self, entity: &str, from: i64, to: i64, f: &mut dyn FnMut(&HistoryEvent));
 }
 
+impl<T: HistoryView + ?Sized> HistoryView for &T {
+    fn for_each_event(&self, entity: &str, from: i64, to: i64, f: &mut dyn FnMut(&HistoryEvent)) {
+        (**self).for_each_event(entity, from, to, f);
+    }
+}
+
 /// FNV-1a, 64 bit: a hash that is the same on every machine and every run, unlike std's
 /// `DefaultHasher`, because history written by one process is read by another.
 /// Parameters from the FNV reference (Fowler, Noll, Vo; IETF draft-eastlake-fnv).

@@ -37,6 +37,8 @@ pub struct HttpSettings {
     /// `retention.days` (0: purges are off).
     pub retention_days: u32,
     pub retention_check_hours: u32,
+    /// The claims stream to consume, when enabled.
+    pub stream: Option<crate::config::StreamConfig>,
 }
 
 impl HttpSettings {
@@ -406,7 +408,7 @@ async fn post_batch(
                 handle_line(&st, &who.name, &line, line_no, &mut pending);
             }
             if pending.len() >= BATCH_CHUNK || at_end || stop {
-                st.svc.store.flusher.durable().await;
+                st.svc.store.durable().await;
                 let mut out = Vec::new();
                 for v in pending.drain(..) {
                     out.extend_from_slice(v.to_string().as_bytes());
@@ -1012,14 +1014,35 @@ async fn healthz() -> Json<serde_json::Value> {
     Json(json!({"status": "ok"}))
 }
 
-async fn readyz(State(st): State<AppState>) -> Json<serde_json::Value> {
-    Json(json!({
-        "status": "ready",
-        "store": {"claims": st.svc.store.claim_count()},
+/// Ready when every dependency answers: the store (sled or PostgreSQL) and, when this
+/// instance consumes the claims stream, NATS. 503 names the one that does not.
+async fn readyz(State(st): State<AppState>) -> Response {
+    let store = st.svc.store.clone();
+    let store_ready = tokio::task::spawn_blocking(move || store.ready())
+        .await
+        .map_err(|e| e.to_string())
+        .and_then(|r| r.map_err(|e| e.to_string()));
+    let stream = st.svc.stream_health.get();
+    let stream_ready = stream.is_none_or(|h| h.ready());
+    let ready = store_ready.is_ok() && stream_ready;
+    let body = json!({
+        "status": if ready { "ready" } else { "not_ready" },
+        "store": {
+            "backend": st.svc.store.kind(),
+            "ready": store_ready.is_ok(),
+            "error": store_ready.err(),
+        },
+        "stream": stream.map(|h| json!({"ready": h.ready(), "connection": h.state()})),
         "model": st.svc.model().version(),
         "challenger": st.svc.challenger().map(|(m, _)| m.version().to_string()),
         "rules": st.svc.rules().version,
-    }))
+    });
+    let code = if ready {
+        StatusCode::OK
+    } else {
+        StatusCode::SERVICE_UNAVAILABLE
+    };
+    (code, Json(body)).into_response()
 }
 
 async fn metrics(State(st): State<AppState>) -> Response {

@@ -196,7 +196,7 @@ fn run(cli: Cli) -> Result<()> {
             claimant: Some(person),
         } => {
             let config = Config::load(config.as_deref())?;
-            let store = weir::store::Store::open(&config.store.path, config.store.cache_mb << 20)
+            let store = weir::store::Store::from_config(&config.store)
                 .with_context(|| {
                     format!(
                         "cannot open the store {} (is weir serve running on it? use GET /v1/claimants/ID/records then)",
@@ -219,7 +219,7 @@ fn run(cli: Cli) -> Result<()> {
             claimant: None,
         } => {
             let config = Config::load(config.as_deref())?;
-            let store = weir::store::Store::open(&config.store.path, config.store.cache_mb << 20)
+            let store = weir::store::Store::from_config(&config.store)
                 .with_context(|| {
                     format!(
                         "cannot open the store {} (is weir serve running on it? use GET /v1/export/training then)",

@@ -29,6 +29,7 @@ pub fn build(config: &Config) -> Result<(Service, HttpSettings)> {
         access: std::sync::Arc::new(access),
         retention_days: config.retention.days,
         retention_check_hours: config.retention.check_hours,
+        stream: config.stream.enabled.then(|| config.stream.clone()),
     };
     Ok((svc, settings))
 }
@@ -41,8 +42,10 @@ pub fn build_service(config: &Config) -> Result<Service> {
     let model =
         Model::new(artifact).with_context(|| format!("model {}", config.paths.model.display()))?;
     let rules = RuleSet::read(&config.paths.rules)?;
-    let store = Store::open(&config.store.path, config.store.cache_mb * 1024 * 1024)
-        .with_context(|| format!("store {}", config.store.path.display()))?;
+    let store = Store::from_config(&config.store).with_context(|| match config.store.backend {
+        crate::config::StoreBackend::Sled => format!("store {}", config.store.path.display()),
+        crate::config::StoreBackend::Postgres => "store (postgres)".to_string(),
+    })?;
     let svc = Service::new(
         store,
         model,
@@ -90,7 +93,7 @@ pub async fn run(
     listener: tokio::net::TcpListener,
     shutdown: impl std::future::Future<Output = ()> + Send + 'static,
 ) -> Result<()> {
-    svc.store.start_flusher();
+    svc.store.start();
     let store = svc.store.clone();
     // Monitoring gauges are recomputed in the background, never on the request path.
     let refresher = svc.clone();
@@ -125,11 +128,27 @@ pub async fn run(
             }
         });
     }
+    let (stop_stream, stream_stopped) = tokio::sync::watch::channel(false);
+    let consumer = match settings.stream.clone() {
+        Some(cfg) => {
+            let (health, task) = crate::stream::start(svc.clone(), cfg, stream_stopped)
+                .await
+                .context("claims stream")?;
+            let _ = svc.stream_health.set(health);
+            Some(task)
+        }
+        None => None,
+    };
     let app = http::app(svc, settings);
     axum::serve(listener, app)
         .with_graceful_shutdown(shutdown)
         .await
         .context("server")?;
+    if let Some(task) = consumer {
+        // Stop pulling; claims in flight finish and are acknowledged before the store closes.
+        let _ = stop_stream.send(true);
+        let _ = task.await;
+    }
     store.flush().context("final store flush")?;
     tracing::info!("stopped; store flushed");
     Ok(())

@@ -91,8 +91,14 @@ pub struct Service {
     pub monitor: Arc<crate::config::Monitor>,
     /// A model shadow-scoring every claim beside the champion, with when it started.
     pub challenger: Arc<RwLock<Option<Challenger>>>,
-    intake_lock: Arc<Mutex<()>>,
     queue_lock: Arc<Mutex<()>>,
+    /// The claims stream consumer, when `weir serve` runs one (for `/readyz`).
+    pub stream_health: Arc<std::sync::OnceLock<Arc<crate::stream::Health>>>,
+}
+
+/// The lock key of a claim's own records (entity keys are `kind:id`; this cannot clash).
+fn claim_lock_key(claim_id: &str) -> String {
+    format!("claim-record:{claim_id}")
 }
 
 /// Content hash of a claim: equal for the same content, whatever the JSON key order.
@@ -113,7 +119,7 @@ impl Service {
         routing: Routing,
         lease_seconds: i64,
     ) -> Service {
-        let metrics = Metrics::new(&store.flusher.flush_seconds);
+        let metrics = Metrics::new(store.flush_seconds());
         let svc = Service {
             store,
             model: Arc::new(RwLock::new(Arc::new(model))),
@@ -123,8 +129,8 @@ impl Service {
             metrics,
             monitor: Arc::new(crate::config::Monitor::default()),
             challenger: Arc::new(RwLock::new(None)),
-            intake_lock: Arc::new(Mutex::new(())),
             queue_lock: Arc::new(Mutex::new(())),
+            stream_health: Arc::default(),
         };
         svc.refresh_depths();
         svc
@@ -226,10 +232,11 @@ impl Service {
         submitted_by: Option<&str>,
     ) -> Result<(DecisionRecord, IntakeStatus), ServiceError> {
         let hash = content_hash(&claim);
-        let _guard = self
-            .intake_lock
-            .lock()
-            .map_err(|_| ServiceError::Poisoned)?;
+        // Held until the decision is written: no other writer touches this claim or any
+        // entity it names meanwhile (across instances on a shared store).
+        let mut keys = claim.entity_keys();
+        keys.push(claim_lock_key(&claim.claim_id));
+        let _guard = self.store.lock(&keys)?;
         let head = self.store.head(&claim.claim_id)?;
         if let Some(h) = &head
             && h.content_hash == hash
@@ -248,7 +255,7 @@ impl Service {
         let t0 = Instant::now();
         let model = self.model();
         let rules = self.rules();
-        let fv = features::compute(&claim, &self.store);
+        let fv = features::compute(&claim, &*self.store.history_view(&claim)?);
         let scored = model.score(&fv);
         let challenger = self.challenger().map(|(c, _)| {
             let s = c.score(&fv);
@@ -388,7 +395,7 @@ impl Service {
         submitted_by: Option<&str>,
     ) -> Result<Decision, ServiceError> {
         let (rec, status) = self.decide_as(claim, now, submitted_by)?;
-        self.store.flusher.durable().await;
+        self.store.durable().await;
         Ok(Decision::from_record(&rec, status))
     }
 
@@ -412,10 +419,7 @@ impl Service {
         posted_by: Option<&str>,
     ) -> Result<Option<(OutcomeRecord, bool)>, ServiceError> {
         let (rec, created) = {
-            let _guard = self
-                .intake_lock
-                .lock()
-                .map_err(|_| ServiceError::Poisoned)?;
+            let _guard = self.store.lock(&[claim_lock_key(claim_id)])?;
             let Some(head) = self.store.head(claim_id)? else {
                 return Ok(None);
             };
@@ -448,7 +452,7 @@ impl Service {
                 (rec, true)
             }
         };
-        self.store.flusher.durable().await;
+        self.store.durable().await;
         Ok(Some((rec, created)))
     }
 
@@ -465,7 +469,7 @@ impl Service {
                 .lease_next(queue, holder, now.timestamp(), self.lease_seconds)?
         };
         if item.is_some() {
-            self.store.flusher.durable().await;
+            self.store.durable().await;
         }
         Ok(item)
     }
@@ -478,16 +482,13 @@ impl Service {
     ) -> Result<bool, ServiceError> {
         {
             // Under the intake lock, so a purge or an intake never interleaves with it.
-            let _g = self
-                .intake_lock
-                .lock()
-                .map_err(|_| ServiceError::Poisoned)?;
+            let _g = self.store.lock(&[claim_lock_key(claim_id)])?;
             if self.store.head(claim_id)?.is_none() {
                 return Ok(false);
             }
             self.store.set_hold(claim_id, hold.as_ref())?;
         }
-        self.store.flusher.durable().await;
+        self.store.durable().await;
         Ok(true)
     }
 
@@ -503,10 +504,7 @@ impl Service {
         let candidates = self.store.inactive_since(cutoff)?;
         let mut report = crate::store::PurgeReport::default();
         for id in candidates {
-            let _g = self
-                .intake_lock
-                .lock()
-                .map_err(|_| ServiceError::Poisoned)?;
+            let _g = self.store.lock(&[claim_lock_key(&id)])?;
             match self.store.purge_claim(&id)? {
                 Some(n) => {
                     report.purged_claims += 1;
@@ -515,7 +513,7 @@ impl Service {
                 None => report.kept_on_hold += 1,
             }
         }
-        self.store.flusher.durable().await;
+        self.store.durable().await;
         self.metrics
             .purged_claims
             .inc_by(report.purged_claims as u64);
@@ -529,7 +527,7 @@ impl Service {
             self.store.release(queue, claim_id)?
         };
         if found {
-            self.store.flusher.durable().await;
+            self.store.durable().await;
         }
         Ok(found)
     }
@@ -597,7 +595,7 @@ impl Service {
     pub fn observations(&self) -> Result<Vec<crate::monitor::quality::Observation>, ServiceError> {
         let mut out = Vec::new();
         let segs = &self.monitor.segments;
-        self.store.for_each_latest(|rec, outcome| {
+        self.store.for_each_latest(&mut |rec, outcome| {
             let mut segments = std::collections::BTreeMap::new();
             for s in segs {
                 let v = match s.as_str() {
@@ -631,7 +629,7 @@ impl Service {
         let mut cols: Vec<Vec<f64>> = vec![Vec::new(); a.features.len()];
         let (mut probs, mut outl) = (Vec::new(), Vec::new());
         let mut n = 0;
-        self.store.for_each_latest(|rec, _| {
+        self.store.for_each_latest(&mut |rec, _| {
             let t = DateTime::parse_from_rfc3339(&rec.decided_at)
                 .map(|t| t.with_timezone(&Utc))
                 .unwrap_or_default();
@@ -742,7 +740,7 @@ impl Service {
         let (mut both, mut agree) = (0usize, 0usize);
         let (mut pc, mut pz, mut y) = (Vec::new(), Vec::new(), Vec::new());
         let (mut cref, mut zref) = (Vec::new(), Vec::new());
-        self.store.for_each_latest(|rec, outcome| {
+        self.store.for_each_latest(&mut |rec, outcome| {
             let Some(sh) = &rec.challenger else { return };
             if cv.as_deref() != Some(sh.model_version.as_str())
                 || rec.model_version != champion.version()
@@ -788,7 +786,7 @@ impl Service {
     ) -> Result<crate::report::ReportData, ServiceError> {
         let champion = self.model();
         let (mut scores, mut labels) = (Vec::new(), Vec::new());
-        self.store.for_each_latest(|rec, outcome| {
+        self.store.for_each_latest(&mut |rec, outcome| {
             if rec.model_version != champion.version() {
                 return;
             }

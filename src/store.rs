@@ -1,5 +1,7 @@
-//! The embedded store (sled): its trees, their keys, atomic multi-tree writes, and durable
-//! acknowledgement with group commit.
+//! The store: the [`Backend`] trait every store implements, the [`Store`] handle the service
+//! holds, and the embedded default, [`SledStore`]: its trees, their keys, atomic multi-tree
+//! writes, and durable acknowledgement with group commit. The shared PostgreSQL back end is
+//! in [`crate::pg_store`].
 //!
 //! Trees and keys (`\0` separates parts; ids never contain control characters):
 //!
@@ -39,6 +41,12 @@ use tokio::sync::{Notify, watch};
 pub enum StoreError {
     #[error("store: {0}")]
     Sled(#[from] sled::Error),
+    #[error("store (postgres): {0}")]
+    Postgres(String),
+    /// Another writer stored the same claim revision first (only possible with several
+    /// instances on one shared store).
+    #[error("store conflict: {0}")]
+    Conflict(String),
     #[error("store record is damaged ({what}): {detail}")]
     Corrupt { what: String, detail: String },
     #[error("store flush failed: {0}")]
@@ -294,9 +302,9 @@ impl Flusher {
     }
 }
 
-/// The sled store.
+/// The embedded sled store.
 #[derive(Clone)]
-pub struct Store {
+pub struct SledStore {
     db: sled::Db,
     claims: sled::Tree,
     revisions: sled::Tree,
@@ -311,6 +319,11 @@ pub struct Store {
     /// every write that adds or removes an item: sled's own count is a full scan, and an
     /// intake that counted its queue on every decision slowed down as the queue grew.
     depths: Arc<[std::sync::atomic::AtomicI64; 4]>,
+    /// One writer at a time: sled serves one process, so one lock orders every intake,
+    /// outcome, hold and purge.
+    write_lock: Arc<std::sync::Mutex<()>>,
+    /// Leasing reads an item and writes it back: one lease at a time.
+    lease_lock: Arc<std::sync::Mutex<()>>,
 }
 
 fn queue_index(q: Queue) -> usize {
@@ -329,15 +342,268 @@ pub enum IntakeStatus {
     Revised,
 }
 
+impl IntakeStatus {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            IntakeStatus::New => "new",
+            IntakeStatus::Duplicate => "duplicate",
+            IntakeStatus::Revised => "revised",
+        }
+    }
+}
+
+/// Anything a guard holds until it is dropped (a mutex guard, a database session's locks).
+pub trait Held {}
+impl<T> Held for T {}
+
+/// One entry of the entity history index, as stored (for comparing back ends and runs).
+#[derive(Debug, Clone, PartialEq, PartialOrd)]
+pub struct HistoryRow {
+    pub entity: String,
+    pub at: i64,
+    pub claim: u64,
+    pub claimant: u64,
+    pub amount: f64,
+    pub claim_id: String,
+}
+
+/// What every store does: claims and their revisions (audit records), the entity history
+/// index, review queues and leases, outcomes, legal holds. The service is written against
+/// this trait only; [`SledStore`] (embedded, the default) and [`crate::pg_store::PgStore`]
+/// (shared by several instances) implement it, and `tests/store_suite.rs` runs one behaviour
+/// suite against both.
+///
+/// Writers call [`Backend::lock`] with the keys they touch (the claim's own key and every
+/// entity it names) and keep the guard while they read, decide and write: sled takes one
+/// process-wide lock; PostgreSQL takes session advisory locks on the keys, so two instances
+/// deciding claims that share a party run one after the other, and claims sharing nothing
+/// run in parallel.
+pub trait Backend: Send + Sync {
+    /// `sled` or `postgres`, for logs and `/readyz`.
+    fn kind(&self) -> &'static str;
+    /// Start background work (sled's group-commit loop); needs a tokio runtime.
+    fn start(&self);
+    /// Wait until every write made before this call is durable.
+    fn durable(&self) -> std::pin::Pin<Box<dyn std::future::Future<Output = ()> + Send + '_>>;
+    /// Time to make writes durable (`weir_store_flush_seconds`).
+    fn flush_seconds(&self) -> &prometheus::Histogram;
+    /// Can the store be read now (for `/readyz`)?
+    fn ready(&self) -> Result<(), StoreError>;
+    /// Serialise writers touching any of `keys` (see the trait documentation).
+    fn lock<'a>(&'a self, keys: &[String]) -> Result<Box<dyn Held + 'a>, StoreError>;
+    /// Items in a queue, counted by scanning the store.
+    fn count_queue(&self, queue: Queue) -> usize;
+    fn flush(&self) -> Result<(), StoreError>;
+    fn head(&self, claim_id: &str) -> Result<Option<ClaimHead>, StoreError>;
+    fn decision(&self, claim_id: &str, rev: u32) -> Result<Option<DecisionRecord>, StoreError>;
+    /// Every revision of a claim, oldest first.
+    fn revisions(&self, claim_id: &str) -> Result<Vec<DecisionRecord>, StoreError>;
+    /// Write a decided claim: history, audit record, head and queue entry in one transaction.
+    /// `previous` is the stored record this one revises, if any.
+    fn record(
+        &self,
+        rec: &DecisionRecord,
+        previous: Option<&DecisionRecord>,
+        item: Option<&QueueItem>,
+    ) -> Result<(), StoreError>;
+    fn queue_item(&self, queue: Queue, claim_id: &str) -> Result<Option<QueueItem>, StoreError>;
+    fn queue_depth(&self, queue: Queue) -> usize;
+    /// Items of a queue in priority order, `offset` skipped, at most `limit`.
+    fn queue_page(
+        &self,
+        queue: Queue,
+        offset: usize,
+        limit: usize,
+    ) -> Result<Vec<QueueItem>, StoreError>;
+    /// Lease the highest-priority item not under a live lease; never the same item to two
+    /// callers.
+    fn lease_next(
+        &self,
+        queue: Queue,
+        holder: &str,
+        now: i64,
+        lease_seconds: i64,
+    ) -> Result<Option<QueueItem>, StoreError>;
+    /// Give a leased item back to the queue. `Ok(false)` when there is no such item.
+    fn release(&self, queue: Queue, claim_id: &str) -> Result<bool, StoreError>;
+    fn claim_count(&self) -> usize;
+    /// Entries in each part of the store (claims, revisions, history, queue items, queue
+    /// ranks, outcomes, outcome revisions, holds).
+    fn tree_sizes(&self) -> [usize; 8];
+    fn outcome(&self, claim_id: &str) -> Result<Option<OutcomeRecord>, StoreError>;
+    /// Every outcome revision of a claim, oldest first.
+    fn outcome_history(&self, claim_id: &str) -> Result<Vec<OutcomeRecord>, StoreError>;
+    /// Store an outcome and take the claim out of its review queue, in one transaction.
+    fn record_outcome(
+        &self,
+        rec: &OutcomeRecord,
+        decision: &DecisionRecord,
+    ) -> Result<(), StoreError>;
+    /// Every claim's latest decision with its latest outcome, in claim id order.
+    fn for_each_latest(
+        &self,
+        f: &mut dyn FnMut(&DecisionRecord, Option<&OutcomeRecord>),
+    ) -> Result<(), StoreError>;
+    fn hold(&self, claim_id: &str) -> Result<Option<Hold>, StoreError>;
+    /// Set (`Some`) or lift (`None`) a legal hold.
+    fn set_hold(&self, claim_id: &str, hold: Option<&Hold>) -> Result<(), StoreError>;
+    fn hold_count(&self) -> usize;
+    /// Remove one claim entirely (every revision, its history events, queue entry, outcomes)
+    /// in one transaction, unless it is under legal hold. Returns the entries removed, or
+    /// `None` when the claim is held or unknown.
+    fn purge_claim(&self, claim_id: &str) -> Result<Option<usize>, StoreError>;
+    /// The history the features of `claim` read (every entity it names, the long window
+    /// before its time).
+    fn history_view<'a>(&'a self, claim: &Claim) -> Result<Box<dyn HistoryView + 'a>, StoreError>;
+    /// Ids of the claims in `entity`'s history from `from` (inclusive) to `to` (exclusive).
+    fn history_claim_ids(
+        &self,
+        entity: &str,
+        from: i64,
+        to: i64,
+    ) -> Result<Vec<String>, StoreError>;
+    /// The whole history index, sorted (for tests and for comparing runs).
+    fn history_dump(&self) -> Result<Vec<HistoryRow>, StoreError>;
+
+    /// Write every claim (latest revision) as a training-file line with its latest outcome,
+    /// or `unadjudicated`: the input of the next `weir train`. Returns (claims, with outcome).
+    fn export_training(&self, w: &mut dyn std::io::Write) -> Result<(usize, usize), StoreError> {
+        let (mut n, mut with_outcome) = (0, 0);
+        let mut io_err = None;
+        self.for_each_latest(&mut |rec, outcome| {
+            if io_err.is_some() {
+                return;
+            }
+            let line = crate::train::training_line(&rec.claim, outcome.map(|o| o.report.outcome));
+            if let Err(e) = writeln!(w, "{line}") {
+                io_err = Some(e);
+            }
+            n += 1;
+            with_outcome += usize::from(outcome.is_some());
+        })?;
+        match io_err {
+            Some(e) => Err(StoreError::Flush(format!("export write failed: {e}"))),
+            None => Ok((n, with_outcome)),
+        }
+    }
+
+    /// Claims whose last activity (latest decision or outcome) is before `cutoff`.
+    fn inactive_since(
+        &self,
+        cutoff: chrono::DateTime<chrono::Utc>,
+    ) -> Result<Vec<String>, StoreError> {
+        let mut out = Vec::new();
+        let last = |s: &str| {
+            chrono::DateTime::parse_from_rfc3339(s)
+                .map(|t| t.with_timezone(&chrono::Utc))
+                .ok()
+        };
+        self.for_each_latest(&mut |rec, outcome| {
+            let mut t = last(&rec.decided_at);
+            if let Some(o) = outcome {
+                t = t.max(last(&o.recorded_at));
+            }
+            if t.is_some_and(|t| t < cutoff) {
+                out.push(rec.claim_id.clone());
+            }
+        })?;
+        Ok(out)
+    }
+
+    /// Every claim naming `person_id` as claimant or as a party, with everything stored about
+    /// it. Found through the history index, so it costs one range scan per role.
+    fn person_records(&self, person_id: &str) -> Result<PersonRecords, StoreError> {
+        let mut found: BTreeMap<String, Vec<String>> = BTreeMap::new();
+        let roles =
+            std::iter::once("claimant").chain(crate::claim::Role::ALL.iter().map(|r| r.as_str()));
+        for role in roles {
+            let entity = format!("{role}:{person_id}");
+            for id in self.history_claim_ids(&entity, i64::MIN, i64::MAX)? {
+                let roles = found.entry(id).or_default();
+                if !roles.iter().any(|r| r == role) {
+                    roles.push(role.to_string());
+                }
+            }
+        }
+        let mut claims = Vec::new();
+        for (claim_id, appears_as) in found {
+            claims.push(ClaimRecords {
+                revisions: self.revisions(&claim_id)?,
+                outcomes: self.outcome_history(&claim_id)?,
+                hold: self.hold(&claim_id)?,
+                claim_id,
+                appears_as,
+            });
+        }
+        Ok(PersonRecords {
+            person_id: person_id.to_string(),
+            claims,
+        })
+    }
+
+    /// Other claims naming any of this claim's parties, policy or address (not the claimant
+    /// alone), reported within `window_secs` before or after it: the linked-claims view.
+    /// Returns `(entity, claim id)` pairs, sorted.
+    fn linked_claims(
+        &self,
+        claim: &Claim,
+        window_secs: i64,
+    ) -> Result<Vec<(String, String)>, StoreError> {
+        let t = claim.event_time();
+        let mut out = std::collections::BTreeSet::new();
+        for key in claim.entity_keys() {
+            for id in self.history_claim_ids(&key, t - window_secs, t + window_secs + 1)? {
+                if id != claim.claim_id {
+                    out.insert((key.clone(), id));
+                }
+            }
+        }
+        Ok(out.into_iter().collect())
+    }
+}
+
+/// The store the service holds: one back end behind the [`Backend`] trait, cheap to clone.
+#[derive(Clone)]
+pub struct Store(Arc<dyn Backend>);
+
+impl std::ops::Deref for Store {
+    type Target = dyn Backend;
+    fn deref(&self) -> &(dyn Backend + 'static) {
+        &*self.0
+    }
+}
+
 impl Store {
-    /// Open (or create) the store in `path`. `cache_bytes` sizes sled's page cache.
+    /// Open (or create) the embedded sled store in `path` (the default back end).
     pub fn open(path: &std::path::Path, cache_bytes: u64) -> Result<Store, StoreError> {
+        Ok(Store(Arc::new(SledStore::open(path, cache_bytes)?)))
+    }
+
+    pub fn from_backend(b: Arc<dyn Backend>) -> Store {
+        Store(b)
+    }
+
+    /// The store a configuration names: sled at `store.path`, or PostgreSQL at
+    /// `store.postgres_url` (migrations applied first).
+    pub fn from_config(c: &crate::config::StoreConfig) -> Result<Store, StoreError> {
+        match c.backend {
+            crate::config::StoreBackend::Sled => Store::open(&c.path, c.cache_mb << 20),
+            crate::config::StoreBackend::Postgres => Ok(Store(Arc::new(
+                crate::pg_store::PgStore::connect(&c.postgres_url, c.postgres_pool)?,
+            ))),
+        }
+    }
+}
+
+impl SledStore {
+    /// Open (or create) the store in `path`. `cache_bytes` sizes sled's page cache.
+    pub fn open(path: &std::path::Path, cache_bytes: u64) -> Result<SledStore, StoreError> {
         let db = sled::Config::new()
             .path(path)
             .cache_capacity(cache_bytes)
             .flush_every_ms(Some(500))
             .open()?;
-        Ok(Store {
+        Ok(SledStore {
             claims: db.open_tree("claims")?,
             revisions: db.open_tree("revisions")?,
             history: db.open_tree("history")?,
@@ -349,11 +615,13 @@ impl Store {
             db,
             flusher: Flusher::new(),
             depths: Arc::default(),
+            write_lock: Arc::default(),
+            lease_lock: Arc::default(),
         }
         .with_counted_depths())
     }
 
-    fn with_counted_depths(self) -> Store {
+    fn with_counted_depths(self) -> SledStore {
         for q in Queue::ALL {
             self.depths[queue_index(q)].store(self.count_queue(q) as i64, Ordering::SeqCst);
         }
@@ -363,33 +631,56 @@ impl Store {
     fn adjust_depth(&self, q: Queue, by: i64) {
         self.depths[queue_index(q)].fetch_add(by, Ordering::SeqCst);
     }
+}
+
+impl Backend for SledStore {
+    fn kind(&self) -> &'static str {
+        "sled"
+    }
+
+    fn start(&self) {
+        self.flusher.spawn(self.db.clone());
+    }
+
+    fn durable(&self) -> std::pin::Pin<Box<dyn std::future::Future<Output = ()> + Send + '_>> {
+        Box::pin(self.flusher.durable())
+    }
+
+    fn flush_seconds(&self) -> &prometheus::Histogram {
+        &self.flusher.flush_seconds
+    }
+
+    fn ready(&self) -> Result<(), StoreError> {
+        self.claims.get(b"")?;
+        Ok(())
+    }
+
+    fn lock<'a>(&'a self, _keys: &[String]) -> Result<Box<dyn Held + 'a>, StoreError> {
+        let g = self.write_lock.lock().unwrap_or_else(|p| p.into_inner());
+        Ok(Box::new(g))
+    }
 
     /// Items in a queue, counted by scanning the store (what [`Store::queue_depth`] keeps
     /// without scanning; tests compare the two).
-    pub fn count_queue(&self, queue: Queue) -> usize {
+    fn count_queue(&self, queue: Queue) -> usize {
         self.queue_rank
             .scan_prefix(sep(&[queue.as_str().as_bytes(), &[]]))
             .count()
     }
 
-    /// Start the group-commit loop (needs a tokio runtime).
-    pub fn start_flusher(&self) {
-        self.flusher.spawn(self.db.clone());
-    }
-
-    pub fn flush(&self) -> Result<(), StoreError> {
+    fn flush(&self) -> Result<(), StoreError> {
         self.db.flush()?;
         Ok(())
     }
 
-    pub fn head(&self, claim_id: &str) -> Result<Option<ClaimHead>, StoreError> {
+    fn head(&self, claim_id: &str) -> Result<Option<ClaimHead>, StoreError> {
         self.claims
             .get(claim_id.as_bytes())?
             .map(|v| decode("claim head", &v))
             .transpose()
     }
 
-    pub fn decision(&self, claim_id: &str, rev: u32) -> Result<Option<DecisionRecord>, StoreError> {
+    fn decision(&self, claim_id: &str, rev: u32) -> Result<Option<DecisionRecord>, StoreError> {
         self.revisions
             .get(revision_key(claim_id, rev))?
             .map(|v| decode("decision record", &v))
@@ -397,7 +688,7 @@ impl Store {
     }
 
     /// Every revision of a claim, oldest first.
-    pub fn revisions(&self, claim_id: &str) -> Result<Vec<DecisionRecord>, StoreError> {
+    fn revisions(&self, claim_id: &str) -> Result<Vec<DecisionRecord>, StoreError> {
         let prefix = sep(&[claim_id.as_bytes(), &[]]);
         self.revisions
             .scan_prefix(prefix)
@@ -410,7 +701,7 @@ impl Store {
 
     /// Write a decided claim: history, audit record, head and queue entry in one transaction.
     /// `previous` is the stored record this one revises, if any.
-    pub fn record(
+    fn record(
         &self,
         rec: &DecisionRecord,
         previous: Option<&DecisionRecord>,
@@ -464,25 +755,21 @@ impl Store {
         Ok(())
     }
 
-    pub fn queue_item(
-        &self,
-        queue: Queue,
-        claim_id: &str,
-    ) -> Result<Option<QueueItem>, StoreError> {
+    fn queue_item(&self, queue: Queue, claim_id: &str) -> Result<Option<QueueItem>, StoreError> {
         self.queue_items
             .get(item_key(queue, claim_id))?
             .map(|v| decode("queue item", &v))
             .transpose()
     }
 
-    pub fn queue_depth(&self, queue: Queue) -> usize {
+    fn queue_depth(&self, queue: Queue) -> usize {
         self.depths[queue_index(queue)]
             .load(Ordering::SeqCst)
             .max(0) as usize
     }
 
     /// Items of a queue in priority order, `offset` skipped, at most `limit`.
-    pub fn queue_page(
+    fn queue_page(
         &self,
         queue: Queue,
         offset: usize,
@@ -506,14 +793,15 @@ impl Store {
         Ok(out)
     }
 
-    /// Lease the highest-priority item not under a live lease. The caller serialises leasing.
-    pub fn lease_next(
+    /// Lease the highest-priority item not under a live lease.
+    fn lease_next(
         &self,
         queue: Queue,
         holder: &str,
         now: i64,
         lease_seconds: i64,
     ) -> Result<Option<QueueItem>, StoreError> {
+        let _one_at_a_time = self.lease_lock.lock().unwrap_or_else(|p| p.into_inner());
         let prefix = sep(&[queue.as_str().as_bytes(), &[]]);
         let plen = prefix.len() + 8;
         for kv in self.queue_rank.scan_prefix(&prefix) {
@@ -537,7 +825,8 @@ impl Store {
     }
 
     /// Give a leased item back to the queue. `Ok(false)` when there is no such item.
-    pub fn release(&self, queue: Queue, claim_id: &str) -> Result<bool, StoreError> {
+    fn release(&self, queue: Queue, claim_id: &str) -> Result<bool, StoreError> {
+        let _one_at_a_time = self.lease_lock.lock().unwrap_or_else(|p| p.into_inner());
         let Some(mut item) = self.queue_item(queue, claim_id)? else {
             return Ok(false);
         };
@@ -547,14 +836,14 @@ impl Store {
         Ok(true)
     }
 
-    pub fn claim_count(&self) -> usize {
+    fn claim_count(&self) -> usize {
         self.claims.len()
     }
 
     /// Entries in every tree (claims, revisions, history, queue items, queue ranks, outcomes,
     /// outcome revisions, holds): a cheap way for tests and operators to see that nothing was
     /// half-written.
-    pub fn tree_sizes(&self) -> [usize; 8] {
+    fn tree_sizes(&self) -> [usize; 8] {
         [
             self.claims.len(),
             self.revisions.len(),
@@ -567,7 +856,7 @@ impl Store {
         ]
     }
 
-    pub fn outcome(&self, claim_id: &str) -> Result<Option<OutcomeRecord>, StoreError> {
+    fn outcome(&self, claim_id: &str) -> Result<Option<OutcomeRecord>, StoreError> {
         self.outcomes
             .get(claim_id.as_bytes())?
             .map(|v| decode("outcome", &v))
@@ -575,7 +864,7 @@ impl Store {
     }
 
     /// Every outcome revision of a claim, oldest first.
-    pub fn outcome_history(&self, claim_id: &str) -> Result<Vec<OutcomeRecord>, StoreError> {
+    fn outcome_history(&self, claim_id: &str) -> Result<Vec<OutcomeRecord>, StoreError> {
         self.outcome_revisions
             .scan_prefix(sep(&[claim_id.as_bytes(), &[]]))
             .map(|kv| {
@@ -586,7 +875,7 @@ impl Store {
     }
 
     /// Store an outcome and take the claim out of its review queue, in one transaction.
-    pub fn record_outcome(
+    fn record_outcome(
         &self,
         rec: &OutcomeRecord,
         decision: &DecisionRecord,
@@ -617,35 +906,10 @@ impl Store {
         Ok(())
     }
 
-    /// Write every claim (latest revision) as a training-file line with its latest outcome,
-    /// or `unadjudicated`: the input of the next `weir train`. Returns (claims, with outcome).
-    pub fn export_training(
-        &self,
-        w: &mut dyn std::io::Write,
-    ) -> Result<(usize, usize), StoreError> {
-        let (mut n, mut with_outcome) = (0, 0);
-        let mut io_err = None;
-        self.for_each_latest(|rec, outcome| {
-            if io_err.is_some() {
-                return;
-            }
-            let line = crate::train::training_line(&rec.claim, outcome.map(|o| o.report.outcome));
-            if let Err(e) = writeln!(w, "{line}") {
-                io_err = Some(e);
-            }
-            n += 1;
-            with_outcome += usize::from(outcome.is_some());
-        })?;
-        match io_err {
-            Some(e) => Err(StoreError::Flush(format!("export write failed: {e}"))),
-            None => Ok((n, with_outcome)),
-        }
-    }
-
     /// Every claim's latest decision with its latest outcome, in claim id order.
-    pub fn for_each_latest(
+    fn for_each_latest(
         &self,
-        mut f: impl FnMut(&DecisionRecord, Option<&OutcomeRecord>),
+        f: &mut dyn FnMut(&DecisionRecord, Option<&OutcomeRecord>),
     ) -> Result<(), StoreError> {
         for kv in self.claims.iter() {
             let (k, v) = kv?;
@@ -660,7 +924,7 @@ impl Store {
         Ok(())
     }
 
-    pub fn hold(&self, claim_id: &str) -> Result<Option<Hold>, StoreError> {
+    fn hold(&self, claim_id: &str) -> Result<Option<Hold>, StoreError> {
         self.holds
             .get(claim_id.as_bytes())?
             .map(|v| decode("hold", &v))
@@ -668,7 +932,7 @@ impl Store {
     }
 
     /// Set (`Some`) or lift (`None`) a legal hold.
-    pub fn set_hold(&self, claim_id: &str, hold: Option<&Hold>) -> Result<(), StoreError> {
+    fn set_hold(&self, claim_id: &str, hold: Option<&Hold>) -> Result<(), StoreError> {
         match hold {
             Some(h) => self.holds.insert(claim_id.as_bytes(), encode(h))?,
             None => self.holds.remove(claim_id.as_bytes())?,
@@ -676,14 +940,14 @@ impl Store {
         Ok(())
     }
 
-    pub fn hold_count(&self) -> usize {
+    fn hold_count(&self) -> usize {
         self.holds.len()
     }
 
     /// Remove one claim entirely (every revision, its history events, queue entry, outcomes)
     /// in one transaction, unless it is under legal hold. Returns the entries removed, or
     /// `None` when the claim is held or unknown.
-    pub fn purge_claim(&self, claim_id: &str) -> Result<Option<usize>, StoreError> {
+    fn purge_claim(&self, claim_id: &str) -> Result<Option<usize>, StoreError> {
         if self.holds.contains_key(claim_id.as_bytes())? {
             return Ok(None);
         }
@@ -755,89 +1019,60 @@ impl Store {
             )
     }
 
-    /// Claims whose last activity (latest decision or outcome) is before `cutoff`.
-    pub fn inactive_since(
+    fn history_view<'a>(&'a self, _claim: &Claim) -> Result<Box<dyn HistoryView + 'a>, StoreError> {
+        // sled reads are local and cheap: the features read the index directly.
+        Ok(Box::new(self))
+    }
+
+    fn history_claim_ids(
         &self,
-        cutoff: chrono::DateTime<chrono::Utc>,
+        entity: &str,
+        from: i64,
+        to: i64,
     ) -> Result<Vec<String>, StoreError> {
-        let mut out = Vec::new();
-        let last = |s: &str| {
-            chrono::DateTime::parse_from_rfc3339(s)
-                .map(|t| t.with_timezone(&chrono::Utc))
-                .ok()
+        let start = history_key(entity, from, 0);
+        let end = if to == i64::MAX {
+            // Ids hold no control characters, so `entity \x01` is past every key of `entity`.
+            let mut e = entity.as_bytes().to_vec();
+            e.push(1);
+            e
+        } else {
+            history_key(entity, to, 0)
         };
-        self.for_each_latest(|rec, outcome| {
-            let mut t = last(&rec.decided_at);
-            if let Some(o) = outcome {
-                t = t.max(last(&o.recorded_at));
-            }
-            if t.is_some_and(|t| t < cutoff) {
-                out.push(rec.claim_id.clone());
-            }
-        })?;
+        let mut out = Vec::new();
+        for kv in self.history.range(start..end) {
+            let (_, v) = kv?;
+            out.push(String::from_utf8_lossy(v.get(16..).unwrap_or_default()).into_owned());
+        }
         Ok(out)
     }
 
-    /// Every claim naming `person_id` as claimant or as a party, with everything stored about
-    /// it. Found through the history index, so it costs one range scan per role.
-    pub fn person_records(&self, person_id: &str) -> Result<PersonRecords, StoreError> {
-        let mut found: BTreeMap<String, Vec<String>> = BTreeMap::new();
-        let roles =
-            std::iter::once("claimant").chain(crate::claim::Role::ALL.iter().map(|r| r.as_str()));
-        for role in roles {
-            let entity = format!("{role}:{person_id}");
-            for kv in self.history.scan_prefix(sep(&[entity.as_bytes(), &[]])) {
-                // Ids hold no control characters, so the `\0` ends the prefix exactly.
-                let (_, v) = kv?;
-                let id = String::from_utf8_lossy(v.get(16..).unwrap_or_default()).into_owned();
-                let roles = found.entry(id).or_default();
-                if !roles.iter().any(|r| r == role) {
-                    roles.push(role.to_string());
-                }
+    fn history_dump(&self) -> Result<Vec<HistoryRow>, StoreError> {
+        let mut out = Vec::new();
+        for kv in self.history.iter() {
+            let (k, v) = kv?;
+            let Some(cut) = k.iter().position(|&b| b == 0) else {
+                continue;
+            };
+            if k.len() < cut + 17 || v.len() < 16 {
+                continue;
             }
-        }
-        let mut claims = Vec::new();
-        for (claim_id, appears_as) in found {
-            claims.push(ClaimRecords {
-                revisions: self.revisions(&claim_id)?,
-                outcomes: self.outcome_history(&claim_id)?,
-                hold: self.hold(&claim_id)?,
-                claim_id,
-                appears_as,
+            let at_bits = u64::from_be_bytes(k[cut + 1..cut + 9].try_into().unwrap_or_default());
+            out.push(HistoryRow {
+                entity: String::from_utf8_lossy(&k[..cut]).into_owned(),
+                at: (at_bits ^ (1 << 63)) as i64,
+                claim: u64::from_be_bytes(k[cut + 9..cut + 17].try_into().unwrap_or_default()),
+                claimant: u64::from_le_bytes(v[..8].try_into().unwrap_or_default()),
+                amount: f64::from_le_bytes(v[8..16].try_into().unwrap_or_default()),
+                claim_id: String::from_utf8_lossy(&v[16..]).into_owned(),
             });
         }
-        Ok(PersonRecords {
-            person_id: person_id.to_string(),
-            claims,
-        })
-    }
-
-    /// Other claims naming any of this claim's parties, policy or address (not the claimant
-    /// alone), reported within `window_secs` before or after it: the linked-claims view.
-    /// Returns `(entity, claim id)` pairs, sorted.
-    pub fn linked_claims(
-        &self,
-        claim: &Claim,
-        window_secs: i64,
-    ) -> Result<Vec<(String, String)>, StoreError> {
-        let t = claim.event_time();
-        let mut out = std::collections::BTreeSet::new();
-        for key in claim.entity_keys() {
-            let start = history_key(&key, t - window_secs, 0);
-            let end = history_key(&key, t + window_secs + 1, 0);
-            for kv in self.history.range(start..end) {
-                let (_, v) = kv?;
-                let id = String::from_utf8_lossy(v.get(16..).unwrap_or_default()).into_owned();
-                if id != claim.claim_id {
-                    out.insert((key.clone(), id));
-                }
-            }
-        }
-        Ok(out.into_iter().collect())
+        out.sort_by(|a, b| a.partial_cmp(b).unwrap_or(std::cmp::Ordering::Equal));
+        Ok(out)
     }
 }
 
-impl HistoryView for Store {
+impl HistoryView for SledStore {
     fn for_each_event(&self, entity: &str, from: i64, to: i64, f: &mut dyn FnMut(&HistoryEvent)) {
         let start = history_key(entity, from, 0);
         let end = history_key(entity, to, 0);

@@ -38,6 +38,12 @@ pub struct Metrics {
     pub purged_claims: IntCounter,
     /// Requests refused by access control, by reason (missing/unknown key, role).
     pub auth_refused: IntCounterVec,
+    /// Claims decided from the stream, by intake status.
+    pub stream_claims: IntCounterVec,
+    /// Stream messages sent to the dead-letter subject, by reason.
+    pub stream_dead_letters: IntCounterVec,
+    /// Stream messages delivered more than once.
+    pub stream_redeliveries: IntCounter,
 }
 
 fn must<T>(r: prometheus::Result<T>) -> T {
@@ -126,6 +132,30 @@ impl Metrics {
             ),
             &["reason"],
         ));
+        let stream_claims = must(IntCounterVec::new(
+            Opts::new(
+                "weir_stream_claims_total",
+                "Claims from the stream decided and acknowledged, by intake status",
+            ),
+            &["status"],
+        ));
+        let stream_dead_letters = must(IntCounterVec::new(
+            Opts::new(
+                "weir_stream_dead_letters_total",
+                "Stream messages sent to the dead-letter subject, by reason",
+            ),
+            &["reason"],
+        ));
+        let stream_redeliveries = must(IntCounter::new(
+            "weir_stream_redeliveries_total",
+            "Stream messages delivered more than once (crash, timeout or retry)",
+        ));
+        for s in ["new", "duplicate", "revised"] {
+            stream_claims.with_label_values(&[s]);
+        }
+        for r in ["invalid_claim", "undecidable"] {
+            stream_dead_letters.with_label_values(&[r]);
+        }
         for r in ["missing_key", "unknown_key", "role"] {
             auth_refused.with_label_values(&[r]);
         }
@@ -147,6 +177,9 @@ impl Metrics {
             Box::new(flush.clone()),
             Box::new(purged_claims.clone()),
             Box::new(auth_refused.clone()),
+            Box::new(stream_claims.clone()),
+            Box::new(stream_dead_letters.clone()),
+            Box::new(stream_redeliveries.clone()),
         ] {
             must(registry.register(c));
         }
@@ -178,6 +211,9 @@ impl Metrics {
             referral_rate_ratio,
             purged_claims,
             auth_refused,
+            stream_claims,
+            stream_dead_letters,
+            stream_redeliveries,
         }
     }
 

@@ -67,12 +67,13 @@ fn settings() -> HttpSettings {
         access: std::sync::Arc::new(weir::access::Access::Open),
         retention_days: 0,
         retention_check_hours: 24,
+        stream: None,
     }
 }
 
 fn service(dir: &Path) -> Service {
     let store = Store::open(&dir.join("store"), 16 * 1024 * 1024).unwrap();
-    store.start_flusher();
+    store.start();
     let model = Model::new(weir::model::ModelArtifact::read(model_path()).unwrap()).unwrap();
     let rules = RuleSet::read(&rules_path()).unwrap();
     Service::new(store, model, rules, Routing::default(), 3600)

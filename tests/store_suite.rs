@@ -1,0 +1,445 @@
+//! One behaviour suite, run against every store back end: the embedded sled store always, and
+//! PostgreSQL when `POSTGRES_TEST_URL` names a server (`.ci/run` starts one; each test gets a
+//! database of its own). With `STORE_SUITE_REQUIRE_POSTGRES=1` a missing server fails the
+//! PostgreSQL half instead of skipping it.
+//!
+//! The expected values come from outside the store: features are compared with
+//! `features::compute` over an in-memory history built claim by claim (the same function
+//! training uses, which never touches a store), and counts with what the test itself did.
+
+use chrono::{NaiveDate, TimeZone, Utc};
+use std::collections::{BTreeMap, BTreeSet, HashSet};
+use std::io::Cursor;
+use std::path::{Path, PathBuf};
+use std::sync::{Arc, Mutex, OnceLock};
+use weir::config::Config;
+use weir::features::{self, MemoryHistory};
+use weir::feedback::{Outcome, OutcomeReport};
+use weir::model::{Model, ModelArtifact};
+use weir::rules::{Queue, Routing, RuleSet};
+use weir::service::Service;
+use weir::store::{IntakeStatus, Store, StoreError};
+use weir::train::{self, BadLines};
+
+fn tempdir(tag: &str) -> PathBuf {
+    use std::sync::atomic::{AtomicUsize, Ordering};
+    static N: AtomicUsize = AtomicUsize::new(0);
+    let p = std::env::temp_dir().join(format!(
+        "weir-suite-{tag}-{}-{}",
+        std::process::id(),
+        N.fetch_add(1, Ordering::SeqCst)
+    ));
+    let _ = std::fs::remove_dir_all(&p);
+    std::fs::create_dir_all(&p).unwrap();
+    p
+}
+
+fn artifact() -> &'static ModelArtifact {
+    static A: OnceLock<ModelArtifact> = OnceLock::new();
+    A.get_or_init(|| {
+        let text: Vec<String> = weir::demo_data::generate(1500, 11)
+            .iter()
+            .map(|c| c.to_training_json())
+            .collect();
+        let mut cfg = Config::default();
+        cfg.training.trees.enabled = false;
+        cfg.training.alphas = vec![100.0];
+        let loaded = train::load(Cursor::new(text.join("\n")), BadLines::Refuse).unwrap();
+        train::train(loaded, &cfg, false).unwrap().artifact
+    })
+}
+
+fn service_on(store: Store) -> Service {
+    let model = Model::new(artifact().clone()).unwrap();
+    let rules =
+        RuleSet::read(&Path::new(env!("CARGO_MANIFEST_DIR")).join("config/rules.toml")).unwrap();
+    Service::new(store, model, rules, Routing::default(), 3600)
+}
+
+fn sled_store() -> Option<Store> {
+    Some(Store::open(&tempdir("sled").join("store"), 16 << 20).unwrap())
+}
+
+/// A fresh PostgreSQL database for one test, or `None` (skipped) without a server.
+fn pg_store() -> Option<Store> {
+    let Ok(url) = std::env::var("POSTGRES_TEST_URL") else {
+        assert!(
+            std::env::var("STORE_SUITE_REQUIRE_POSTGRES").as_deref() != Ok("1"),
+            "STORE_SUITE_REQUIRE_POSTGRES=1 but POSTGRES_TEST_URL is not set"
+        );
+        eprintln!("skipped: POSTGRES_TEST_URL not set (no PostgreSQL to test against)");
+        return None;
+    };
+    Some(fresh_pg(&url))
+}
+
+/// Create an empty database for this test and open a store on it (migrations applied).
+pub fn fresh_pg(url: &str) -> Store {
+    use std::sync::atomic::{AtomicUsize, Ordering};
+    static N: AtomicUsize = AtomicUsize::new(0);
+    let name = format!(
+        "weir_suite_{}_{}",
+        std::process::id(),
+        N.fetch_add(1, Ordering::SeqCst)
+    );
+    let mut admin = postgres::Client::connect(url, postgres::NoTls).unwrap();
+    admin
+        .batch_execute(&format!("DROP DATABASE IF EXISTS {name}"))
+        .unwrap();
+    admin
+        .batch_execute(&format!("CREATE DATABASE {name}"))
+        .unwrap();
+    let store =
+        weir::pg_store::PgStore::connect(&format!("{url} dbname={name}"), 6).expect("connect");
+    assert_eq!(store.schema_versions().unwrap(), vec![1]);
+    // A second start applies nothing (migrations are recorded).
+    assert!(store.migrate().unwrap().is_empty());
+    Store::from_backend(Arc::new(store))
+}
+
+fn now() -> chrono::DateTime<Utc> {
+    Utc.with_ymd_and_hms(2026, 6, 1, 12, 0, 0).unwrap()
+}
+
+fn report(outcome: Outcome) -> OutcomeReport {
+    OutcomeReport {
+        outcome,
+        amount_saved: 100.0,
+        amount_recovered: 0.0,
+        adjudicated_on: NaiveDate::from_ymd_opt(2026, 6, 1).unwrap(),
+        decided_by: "inv-7".into(),
+    }
+}
+
+fn runtime() -> tokio::runtime::Runtime {
+    tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+        .unwrap()
+}
+
+/// Every decision's features equal the store-free computation over the claims before it, and
+/// the history index holds exactly one row per (entity, claim).
+fn features_match_store_free_history(store: Store) {
+    let svc = service_on(store);
+    let claims = weir::demo_data::generate(400, 5);
+    let mut reference = MemoryHistory::new();
+    let mut expected_rows = BTreeSet::new();
+    for d in &claims {
+        let want = features::compute(&d.claim, &reference);
+        reference.record(&d.claim);
+        for (entity, e) in features::events_of(&d.claim) {
+            expected_rows.insert((entity, e.at, e.claim));
+        }
+        let (rec, status) = svc.decide(d.claim.clone(), now()).unwrap();
+        assert_eq!(status, IntakeStatus::New);
+        let got: Vec<f64> = features::CATALOGUE
+            .iter()
+            .map(|f| rec.features[f.name])
+            .collect();
+        assert_eq!(got, want.to_vec(), "claim {}", d.claim.claim_id);
+    }
+    let rows: BTreeSet<_> = svc
+        .store
+        .history_dump()
+        .unwrap()
+        .into_iter()
+        .map(|r| (r.entity, r.at, r.claim))
+        .collect();
+    assert_eq!(rows, expected_rows);
+    assert_eq!(svc.store.claim_count(), claims.len());
+    for q in Queue::ALL {
+        assert_eq!(svc.store.queue_depth(q), svc.store.count_queue(q));
+    }
+}
+
+/// Same content: the stored decision, nothing written. New content: a revision whose history
+/// replaces the old one. A second writer of an existing revision: refused whole.
+fn duplicates_revisions_and_conflicts(store: Store) {
+    let svc = service_on(store);
+    let mut claim = weir::demo_data::generate(1, 3).remove(0).claim;
+    let (first, s1) = svc.decide(claim.clone(), now()).unwrap();
+    assert_eq!(s1, IntakeStatus::New);
+    let sizes = svc.store.tree_sizes();
+    let (again, s2) = svc.decide(claim.clone(), now()).unwrap();
+    assert_eq!((s2, &again), (IntakeStatus::Duplicate, &first));
+    assert_eq!(svc.store.tree_sizes(), sizes);
+
+    claim.claimed_amount += 1234.0;
+    let (second, s3) = svc.decide(claim.clone(), now()).unwrap();
+    assert_eq!((s3, second.revision), (IntakeStatus::Revised, 2));
+    assert_eq!(svc.store.revisions(&claim.claim_id).unwrap().len(), 2);
+    let amounts: HashSet<u64> = svc
+        .store
+        .history_dump()
+        .unwrap()
+        .iter()
+        .map(|r| r.amount.to_bits())
+        .collect();
+    assert_eq!(amounts, HashSet::from([claim.claimed_amount.to_bits()]));
+
+    let sizes = svc.store.tree_sizes();
+    let again = svc.store.record(&second, Some(&first), None);
+    match (svc.store.kind(), again) {
+        ("postgres", Err(StoreError::Conflict(_))) => {}
+        // sled has one process per folder, serialised by its lock: a rewrite of the same
+        // revision can only come from that process, and replaces it.
+        ("sled", Ok(())) => {}
+        (k, r) => panic!("{k}: expected a conflict, got {r:?}"),
+    }
+    if svc.store.kind() == "postgres" {
+        assert_eq!(svc.store.tree_sizes(), sizes, "nothing half-written");
+    }
+}
+
+/// Many workers leasing from one queue at once never get the same item; a lapsed lease is
+/// offered again; a released item can be leased again.
+fn leases_are_never_shared(store: Store) {
+    let svc = service_on(store);
+    for d in weir::demo_data::generate(600, 9) {
+        svc.decide(d.claim, now()).unwrap();
+    }
+    let q = Queue::DeskCheck;
+    let depth = svc.store.queue_depth(q);
+    assert!(depth >= 20, "only {depth} items to lease");
+    let t = now().timestamp();
+    let taken = Mutex::new(Vec::new());
+    std::thread::scope(|s| {
+        for w in 0..4 {
+            let (store, taken) = (&svc.store, &taken);
+            s.spawn(move || {
+                while let Some(item) = store.lease_next(q, &format!("inv-{w}"), t, 600).unwrap() {
+                    taken.lock().unwrap().push(item.claim_id);
+                }
+            });
+        }
+    });
+    let taken = taken.into_inner().unwrap();
+    let distinct: HashSet<_> = taken.iter().collect();
+    assert_eq!((taken.len(), distinct.len()), (depth, depth));
+    assert!(
+        svc.store
+            .lease_next(q, "late", t + 1, 600)
+            .unwrap()
+            .is_none()
+    );
+    // Highest priority first, for a fresh lease after the others lapse.
+    let page = svc.store.queue_page(q, 0, depth).unwrap();
+    assert!(page.windows(2).all(|w| w[0].priority >= w[1].priority));
+    let lapsed = svc.store.lease_next(q, "next-day", t + 601, 600).unwrap();
+    assert_eq!(lapsed.map(|i| i.claim_id), Some(page[0].claim_id.clone()));
+    assert!(svc.store.release(q, &page[1].claim_id).unwrap());
+    let again = svc
+        .store
+        .lease_next(q, "inv-9", t + 2, 600)
+        .unwrap()
+        .unwrap();
+    assert_eq!(again.claim_id, page[1].claim_id);
+    assert!(!svc.store.release(q, "no-such-claim").unwrap());
+}
+
+/// An outcome takes the claim out of its queue once; posting it again changes nothing; a
+/// different outcome is a second revision, never a second count.
+fn outcomes_are_counted_once(store: Store) {
+    let rt = runtime();
+    let svc = service_on(store);
+    // sled's group-commit loop runs on the runtime that awaits durability.
+    rt.block_on(async { svc.store.start() });
+    let mut queued = None;
+    for d in weir::demo_data::generate(300, 21) {
+        let (rec, _) = svc.decide(d.claim, now()).unwrap();
+        if rec.queue != Queue::NoReview && queued.is_none() {
+            queued = Some(rec);
+        }
+    }
+    let rec = queued.expect("a queued claim");
+    let depth = svc.store.queue_depth(rec.queue);
+    let (o1, created) = rt
+        .block_on(svc.record_outcome(&rec.claim_id, report(Outcome::Genuine), now()))
+        .unwrap()
+        .unwrap();
+    assert!(created);
+    assert_eq!(svc.store.queue_depth(rec.queue), depth - 1);
+    let (o2, created) = rt
+        .block_on(svc.record_outcome(&rec.claim_id, report(Outcome::Genuine), now()))
+        .unwrap()
+        .unwrap();
+    assert!(!created);
+    assert_eq!(o1, o2);
+    rt.block_on(svc.record_outcome(&rec.claim_id, report(Outcome::Inflated), now()))
+        .unwrap();
+    let hist = svc.store.outcome_history(&rec.claim_id).unwrap();
+    assert_eq!(hist.iter().map(|o| o.revision).collect::<Vec<_>>(), [1, 2]);
+    let mut labelled = 0;
+    svc.store
+        .for_each_latest(&mut |_, o| labelled += usize::from(o.is_some()))
+        .unwrap();
+    assert_eq!(labelled, 1);
+    assert!(
+        rt.block_on(svc.record_outcome("unknown", report(Outcome::Genuine), now()))
+            .unwrap()
+            .is_none()
+    );
+}
+
+/// Retention: a held claim stays whole, every other claim leaves every table; lifting the
+/// hold and purging again empties the store. Person records and the export agree with what
+/// was filed.
+fn holds_purges_and_person_records(store: Store) {
+    let rt = runtime();
+    let svc = service_on(store);
+    // sled's group-commit loop runs on the runtime that awaits durability.
+    rt.block_on(async { svc.store.start() });
+    let claims = weir::demo_data::generate(120, 33);
+    for d in &claims {
+        svc.decide(d.claim.clone(), now()).unwrap();
+    }
+    // Export: every claim once, in claim id order.
+    let mut buf = Vec::new();
+    let (n, with_outcome) = svc.store.export_training(&mut buf).unwrap();
+    assert_eq!((n, with_outcome), (claims.len(), 0));
+    let mut order = Vec::new();
+    svc.store
+        .for_each_latest(&mut |r, _| order.push(r.claim_id.clone()))
+        .unwrap();
+    let mut sorted = order.clone();
+    sorted.sort();
+    assert_eq!(order, sorted);
+
+    // Person records: exactly the claims naming the claimant.
+    let person = claims[0].claim.claimant_id.clone();
+    let want: BTreeSet<String> = claims
+        .iter()
+        .filter(|d| d.claim.claimant_id == person || d.claim.parties.iter().any(|p| p.id == person))
+        .map(|d| d.claim.claim_id.clone())
+        .collect();
+    let got: BTreeSet<String> = svc
+        .store
+        .person_records(&person)
+        .unwrap()
+        .claims
+        .into_iter()
+        .map(|c| c.claim_id)
+        .collect();
+    assert_eq!(got, want);
+
+    let kept = claims[5].claim.claim_id.clone();
+    let hold = weir::store::Hold {
+        claim_id: kept.clone(),
+        reason: "litigation".into(),
+        set_at: now().to_rfc3339(),
+        set_by: "admin".into(),
+    };
+    assert!(rt.block_on(svc.set_hold(&kept, Some(hold))).unwrap());
+    let later = now() + chrono::Duration::days(400);
+    let r = rt.block_on(svc.purge(30, later)).unwrap();
+    assert_eq!((r.purged_claims, r.kept_on_hold), (claims.len() - 1, 1));
+    assert_eq!(svc.store.claim_count(), 1);
+    assert_eq!(svc.store.revisions(&kept).unwrap().len(), 1);
+    let rows = svc.store.history_dump().unwrap();
+    assert!(rows.iter().all(|r| r.claim_id == kept));
+    assert_eq!(rows.len(), claims[5].claim.entity_keys().len());
+    rt.block_on(svc.set_hold(&kept, None)).unwrap();
+    rt.block_on(svc.purge(30, later)).unwrap();
+    assert_eq!(svc.store.tree_sizes(), [0; 8]);
+}
+
+/// Writers naming a common key wait for each other; on PostgreSQL, writers with no key in
+/// common do not.
+fn locks_serialise_shared_keys(store: Store) {
+    let log = Mutex::new(Vec::new());
+    let key = |s: &str| vec![s.to_string()];
+    std::thread::scope(|s| {
+        let first = store.lock(&[key("repairer:R-1"), key("claimant:K-1")].concat());
+        let first = first.unwrap();
+        let (st, log2) = (&store, &log);
+        let waiter = s.spawn(move || {
+            let _g = st
+                .lock(&[key("repairer:R-1"), key("policy:P-9")].concat())
+                .unwrap();
+            log2.lock().unwrap().push("second");
+        });
+        std::thread::sleep(std::time::Duration::from_millis(300));
+        log.lock().unwrap().push("first done");
+        drop(first);
+        waiter.join().unwrap();
+    });
+    assert_eq!(*log.lock().unwrap(), ["first done", "second"]);
+    if store.kind() == "postgres" {
+        let _a = store.lock(&key("repairer:R-1")).unwrap();
+        let t0 = std::time::Instant::now();
+        let b = std::thread::scope(|s| s.spawn(|| store.lock(&key("repairer:R-2")).is_ok()).join());
+        assert!(b.unwrap());
+        assert!(t0.elapsed() < std::time::Duration::from_secs(5));
+    }
+}
+
+/// Linked claims (the claim page's view) name the claims sharing a party within the window.
+fn linked_claims_by_party(store: Store) {
+    let svc = service_on(store);
+    let claims = weir::demo_data::generate(300, 44);
+    for d in &claims {
+        svc.decide(d.claim.clone(), now()).unwrap();
+    }
+    let window = 90 * 86_400;
+    for d in claims.iter().step_by(37) {
+        let keys: BTreeSet<String> = d
+            .claim
+            .entity_keys()
+            .into_iter()
+            .filter(|k| !k.starts_with("claimant:"))
+            .collect();
+        let mut want = BTreeMap::<String, BTreeSet<String>>::new();
+        for o in &claims {
+            if o.claim.claim_id == d.claim.claim_id
+                || (o.claim.event_time() - d.claim.event_time()).abs() > window
+            {
+                continue;
+            }
+            for k in o.claim.entity_keys() {
+                if keys.contains(&k) {
+                    want.entry(k).or_default().insert(o.claim.claim_id.clone());
+                }
+            }
+        }
+        let mut got = BTreeMap::<String, BTreeSet<String>>::new();
+        for (k, id) in svc.store.linked_claims(&d.claim, window).unwrap() {
+            got.entry(k).or_default().insert(id);
+        }
+        // The view includes the claimant key only through parties; compare the others.
+        got.retain(|k, _| keys.contains(k));
+        assert_eq!(got, want, "claim {}", d.claim.claim_id);
+    }
+}
+
+macro_rules! suite {
+    ($($name:ident),* $(,)?) => {
+        mod sled_backend {
+            $(#[test]
+            fn $name() {
+                if let Some(s) = super::sled_store() {
+                    super::$name(s);
+                }
+            })*
+        }
+        mod postgres_backend {
+            $(#[test]
+            fn $name() {
+                if let Some(s) = super::pg_store() {
+                    super::$name(s);
+                }
+            })*
+        }
+    };
+}
+
+suite!(
+    features_match_store_free_history,
+    duplicates_revisions_and_conflicts,
+    leases_are_never_shared,
+    outcomes_are_counted_once,
+    holds_purges_and_person_records,
+    locks_serialise_shared_keys,
+    linked_claims_by_party,
+);

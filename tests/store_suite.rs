@@ -19,35 +19,9 @@ use weir::model::{Model, ModelArtifact};
 use weir::rules::{Queue, Routing, RuleSet};
 use weir::service::Service;
 use weir::store::{IntakeStatus, Store, StoreError};
-use weir::train::{self, BadLines};
 
-fn tempdir(tag: &str) -> PathBuf {
-    use std::sync::atomic::{AtomicUsize, Ordering};
-    static N: AtomicUsize = AtomicUsize::new(0);
-    let p = std::env::temp_dir().join(format!(
-        "weir-suite-{tag}-{}-{}",
-        std::process::id(),
-        N.fetch_add(1, Ordering::SeqCst)
-    ));
-    let _ = std::fs::remove_dir_all(&p);
-    std::fs::create_dir_all(&p).unwrap();
-    p
-}
-
-fn artifact() -> &'static ModelArtifact {
-    static A: OnceLock<ModelArtifact> = OnceLock::new();
-    A.get_or_init(|| {
-        let text: Vec<String> = weir::demo_data::generate(1500, 11)
-            .iter()
-            .map(|c| c.to_training_json())
-            .collect();
-        let mut cfg = Config::default();
-        cfg.training.trees.enabled = false;
-        cfg.training.alphas = vec![100.0];
-        let loaded = train::load(Cursor::new(text.join("\n")), BadLines::Refuse).unwrap();
-        train::train(loaded, &cfg, false).unwrap().artifact
-    })
-}
+mod common;
+use common::{artifact, fresh_database, tempdir};
 
 fn service_on(store: Store) -> Service {
     let model = Model::new(artifact().clone()).unwrap();
@@ -74,23 +48,8 @@ fn pg_store() -> Option<Store> {
 }
 
 /// Create an empty database for this test and open a store on it (migrations applied).
-pub fn fresh_pg(url: &str) -> Store {
-    use std::sync::atomic::{AtomicUsize, Ordering};
-    static N: AtomicUsize = AtomicUsize::new(0);
-    let name = format!(
-        "weir_suite_{}_{}",
-        std::process::id(),
-        N.fetch_add(1, Ordering::SeqCst)
-    );
-    let mut admin = postgres::Client::connect(url, postgres::NoTls).unwrap();
-    admin
-        .batch_execute(&format!("DROP DATABASE IF EXISTS {name}"))
-        .unwrap();
-    admin
-        .batch_execute(&format!("CREATE DATABASE {name}"))
-        .unwrap();
-    let store =
-        weir::pg_store::PgStore::connect(&format!("{url} dbname={name}"), 6).expect("connect");
+fn fresh_pg(url: &str) -> Store {
+    let store = weir::pg_store::PgStore::connect(&fresh_database(url), 6).expect("connect");
     assert_eq!(store.schema_versions().unwrap(), vec![1]);
     // A second start applies nothing (migrations are recorded).
     assert!(store.migrate().unwrap().is_empty());

@@ -152,9 +152,8 @@ pub struct StoreConfig {
     pub path: std::path::PathBuf,
     /// sled page cache, in MiB.
     pub cache_mb: u64,
-    /// PostgreSQL connection string (libpq key=value form or a `postgresql://` URL). Put the
-    /// password in `~/.pgpass` or a `WEIR_STORE_POSTGRES_URL` set by the service manager, not
-    /// in this file.
+    /// PostgreSQL connection string (libpq key=value form or a `postgresql://` URL). A password
+    /// belongs in `WEIR_STORE_POSTGRES_URL`, set by the service manager, not in this file.
     pub postgres_url: String,
     /// Connections this instance keeps open to PostgreSQL.
     pub postgres_pool: usize,

@@ -8,6 +8,7 @@ use crate::feedback::{OutcomeRecord, OutcomeReport};
 use crate::rules::Queue;
 use crate::service::{Decision, Service, ServiceError};
 use crate::store::IntakeStatus;
+use crate::store::StoreError;
 use axum::body::{Body, Bytes};
 use axum::extract::{Extension, MatchedPath, Path, Query, Request, State};
 use axum::http::{HeaderMap, HeaderValue, StatusCode, header};
@@ -143,13 +144,22 @@ pub enum AppError {
     Overloaded,
     #[error("the request took longer than the service allows; retry shortly")]
     TimedOut,
+    #[error("the store is unavailable right now; retry shortly")]
+    StoreUnavailable(String),
     #[error("internal error")]
     Internal(String),
 }
 
 impl From<ServiceError> for AppError {
     fn from(e: ServiceError) -> Self {
-        AppError::Internal(e.to_string())
+        match e {
+            // A shared store that is down or failing over, or a writer that lost a race
+            // (the retry finds its decision): the caller should retry, nothing was stored.
+            ServiceError::Store(StoreError::Postgres(m) | StoreError::Conflict(m)) => {
+                AppError::StoreUnavailable(m)
+            }
+            other => AppError::Internal(other.to_string()),
+        }
     }
 }
 
@@ -200,6 +210,7 @@ impl AppError {
             AppError::Conflict(_) => (StatusCode::CONFLICT, "conflict"),
             AppError::Overloaded => (StatusCode::SERVICE_UNAVAILABLE, "overloaded"),
             AppError::TimedOut => (StatusCode::SERVICE_UNAVAILABLE, "timed-out"),
+            AppError::StoreUnavailable(_) => (StatusCode::SERVICE_UNAVAILABLE, "store-unavailable"),
             AppError::Internal(_) => (StatusCode::INTERNAL_SERVER_ERROR, "internal"),
         }
     }
@@ -208,7 +219,10 @@ impl AppError {
 impl IntoResponse for AppError {
     fn into_response(self) -> Response {
         let (status, kind) = self.status_and_kind();
-        let retry = matches!(self, AppError::Overloaded | AppError::TimedOut);
+        let retry = matches!(
+            self,
+            AppError::Overloaded | AppError::TimedOut | AppError::StoreUnavailable(_)
+        );
         let challenge = matches!(self, AppError::Unauthenticated(_));
         let (detail, errors) = match self {
             AppError::NotJson(e) => (e.to_string(), e.field_errors()),
@@ -217,6 +231,13 @@ impl IntoResponse for AppError {
                 errs,
             ),
             AppError::BadRequest(errs) => ("invalid request; see errors".into(), errs),
+            AppError::StoreUnavailable(cause) => {
+                tracing::error!(%cause, "store unavailable");
+                (
+                    "the store is unavailable right now; nothing was stored; retry shortly".into(),
+                    vec![],
+                )
+            }
             AppError::Internal(cause) => {
                 tracing::error!(%cause, "internal error");
                 (
@@ -1018,10 +1039,11 @@ async fn healthz() -> Json<serde_json::Value> {
 /// instance consumes the claims stream, NATS. 503 names the one that does not.
 async fn readyz(State(st): State<AppState>) -> Response {
     let store = st.svc.store.clone();
-    let store_ready = tokio::task::spawn_blocking(move || store.ready())
-        .await
-        .map_err(|e| e.to_string())
-        .and_then(|r| r.map_err(|e| e.to_string()));
+    let store_ready =
+        tokio::task::spawn_blocking(move || store.ready().map(|()| store.claim_count()))
+            .await
+            .map_err(|e| e.to_string())
+            .and_then(|r| r.map_err(|e| e.to_string()));
     let stream = st.svc.stream_health.get();
     let stream_ready = stream.is_none_or(|h| h.ready());
     let ready = store_ready.is_ok() && stream_ready;
@@ -1030,7 +1052,8 @@ async fn readyz(State(st): State<AppState>) -> Response {
         "store": {
             "backend": st.svc.store.kind(),
             "ready": store_ready.is_ok(),
-            "error": store_ready.err(),
+            "claims": store_ready.as_ref().ok(),
+            "error": store_ready.as_ref().err(),
         },
         "stream": stream.map(|h| json!({"ready": h.ready(), "connection": h.state()})),
         "model": st.svc.model().version(),

@@ -356,6 +356,10 @@ impl Backend for PgStore {
         "postgres"
     }
 
+    fn remote(&self) -> bool {
+        true
+    }
+
     fn start(&self) {}
 
     fn durable(&self) -> std::pin::Pin<Box<dyn std::future::Future<Output = ()> + Send + '_>> {

@@ -74,6 +74,8 @@ pub enum ServiceError {
     Store(#[from] StoreError),
     #[error("the intake lock was poisoned by an earlier panic")]
     Poisoned,
+    #[error("a decision worker stopped: {0}")]
+    Worker(String),
 }
 
 /// A challenger model and when it started shadow-scoring.
@@ -337,7 +339,8 @@ impl Service {
             submitted_by: submitted_by.map(String::from),
         };
         // A claim already adjudicated is re-scored for the record but not queued again.
-        let adjudicated = self.store.outcome(&rec.claim_id)?.is_some();
+        // (An outcome needs a stored claim: a new claim cannot have one.)
+        let adjudicated = head.is_some() && self.store.outcome(&rec.claim_id)?.is_some();
         let item = (rec.queue != Queue::NoReview && !adjudicated).then(|| QueueItem {
             claim_id: rec.claim_id.clone(),
             revision,
@@ -394,7 +397,16 @@ impl Service {
         now: DateTime<Utc>,
         submitted_by: Option<&str>,
     ) -> Result<Decision, ServiceError> {
-        let (rec, status) = self.decide_as(claim, now, submitted_by)?;
+        let (rec, status) = if self.store.remote() {
+            // A shared store answers over the network: decide on a blocking thread, so the
+            // runtime's workers go on serving while this claim waits on the database.
+            let (svc, by) = (self.clone(), submitted_by.map(String::from));
+            tokio::task::spawn_blocking(move || svc.decide_as(claim, now, by.as_deref()))
+                .await
+                .map_err(|e| ServiceError::Worker(e.to_string()))??
+        } else {
+            self.decide_as(claim, now, submitted_by)?
+        };
         self.store.durable().await;
         Ok(Decision::from_record(&rec, status))
     }

@@ -381,6 +381,10 @@ pub struct HistoryRow {
 pub trait Backend: Send + Sync {
     /// `sled` or `postgres`, for logs and `/readyz`.
     fn kind(&self) -> &'static str;
+    /// Whether calls wait on the network (callers then move work to blocking threads).
+    fn remote(&self) -> bool {
+        false
+    }
     /// Start background work (sled's group-commit loop); needs a tokio runtime.
     fn start(&self);
     /// Wait until every write made before this call is durable.

@@ -457,7 +457,10 @@ fn two_instances_share_one_stream_and_one_database() {
         "features differ with no out-of-order neighbour: {unexplained:?}"
     );
     // The kill happened mid-stream: the survivor took over what the dead one had in hand.
-    assert!(redelivered > 0.0, "no message was redelivered after the kill");
+    assert!(
+        redelivered > 0.0,
+        "no message was redelivered after the kill"
+    );
 }
 
 /// Throughput of one instance against two on the same claims (not a pass/fail check: run
@@ -503,4 +506,40 @@ fn stream_throughput_one_against_two() {
         );
         running.into_iter().for_each(stop);
     }
+}
+
+/// `/readyz` names the dependency that does not answer: here the stream, pointed at a port
+/// where no NATS server listens (no services needed). The HTTP intake keeps working.
+#[test]
+fn readyz_says_when_the_stream_is_unreachable() {
+    let dir = tempdir("unready");
+    let dead = std::net::TcpListener::bind("127.0.0.1:0").unwrap();
+    let port = dead.local_addr().unwrap().port();
+    drop(dead);
+    let names = Names::new("down");
+    let config = instance_config(&dir, "unused", &format!("nats://127.0.0.1:{port}"), &names);
+    let text = std::fs::read_to_string(&config).unwrap().replace(
+        "backend = \"postgres\"",
+        &format!("backend = \"sled\"\npath = {:?}", dir.join("store")),
+    );
+    std::fs::write(&config, text).unwrap();
+    let i = start(&config, "unready.log");
+    let rt = tokio::runtime::Runtime::new().unwrap();
+    rt.block_on(async {
+        let api = weir::client::Api::new(i.addr);
+        let r = api.get("/readyz").await.unwrap();
+        assert_eq!(r.status, 503);
+        let body = r.json().unwrap();
+        assert_eq!(body["status"], "not_ready");
+        assert_eq!(body["store"]["ready"], true);
+        assert_eq!(body["store"]["backend"], "sled");
+        assert_eq!(body["stream"]["ready"], false);
+        let claim = weir::demo_data::generate(1, 1).remove(0).claim;
+        let r = api
+            .post_json("/v1/claims", &serde_json::to_value(&claim).unwrap())
+            .await
+            .unwrap();
+        assert_eq!(r.status, 201, "HTTP intake does not depend on the stream");
+    });
+    stop(i);
 }

@@ -29,7 +29,7 @@ use crate::store::{
     Backend, ClaimHead, DecisionRecord, Held, HistoryRow, Hold, QueueItem, StoreError,
 };
 use postgres::fallible_iterator::FallibleIterator;
-use postgres::{Client, NoTls};
+use postgres::{Client, NoTls, Row, Statement};
 use std::collections::HashMap;
 use std::sync::{Condvar, Mutex};
 
@@ -65,17 +65,95 @@ fn blocking<T>(f: impl FnOnce() -> T) -> T {
     }
 }
 
+type Params<'a> = &'a [&'a (dyn postgres::types::ToSql + Sync)];
+
+/// One connection with the statements it has prepared: each statement is parsed and planned
+/// once per connection, not on every call (and costs one round trip instead of two).
+struct Session {
+    client: Client,
+    cache: HashMap<&'static str, Statement>,
+}
+
+fn cached(
+    cache: &mut HashMap<&'static str, Statement>,
+    sql: &'static str,
+    prepare: impl FnOnce(&str) -> Result<Statement, postgres::Error>,
+) -> Result<Statement, postgres::Error> {
+    if let Some(s) = cache.get(sql) {
+        return Ok(s.clone());
+    }
+    let s = prepare(sql)?;
+    cache.insert(sql, s.clone());
+    Ok(s)
+}
+
+impl Session {
+    fn st(&mut self, sql: &'static str) -> Result<Statement, postgres::Error> {
+        let client = &mut self.client;
+        cached(&mut self.cache, sql, |q| client.prepare(q))
+    }
+    fn query(&mut self, sql: &'static str, p: Params) -> Result<Vec<Row>, postgres::Error> {
+        let s = self.st(sql)?;
+        self.client.query(&s, p)
+    }
+    fn query_opt(&mut self, sql: &'static str, p: Params) -> Result<Option<Row>, postgres::Error> {
+        let s = self.st(sql)?;
+        self.client.query_opt(&s, p)
+    }
+    fn query_one(&mut self, sql: &'static str, p: Params) -> Result<Row, postgres::Error> {
+        let s = self.st(sql)?;
+        self.client.query_one(&s, p)
+    }
+    fn execute(&mut self, sql: &'static str, p: Params) -> Result<u64, postgres::Error> {
+        let s = self.st(sql)?;
+        self.client.execute(&s, p)
+    }
+    fn batch_execute(&mut self, sql: &str) -> Result<(), postgres::Error> {
+        self.client.batch_execute(sql)
+    }
+    fn transaction(&mut self) -> Result<Tx<'_>, postgres::Error> {
+        Ok(Tx {
+            tx: self.client.transaction()?,
+            cache: &mut self.cache,
+        })
+    }
+}
+
+/// A transaction that uses (and fills) its session's statement cache.
+struct Tx<'a> {
+    tx: postgres::Transaction<'a>,
+    cache: &'a mut HashMap<&'static str, Statement>,
+}
+
+impl Tx<'_> {
+    fn st(&mut self, sql: &'static str) -> Result<Statement, postgres::Error> {
+        let tx = &mut self.tx;
+        cached(self.cache, sql, |q| tx.prepare(q))
+    }
+    fn query_opt(&mut self, sql: &'static str, p: Params) -> Result<Option<Row>, postgres::Error> {
+        let s = self.st(sql)?;
+        self.tx.query_opt(&s, p)
+    }
+    fn execute(&mut self, sql: &'static str, p: Params) -> Result<u64, postgres::Error> {
+        let s = self.st(sql)?;
+        self.tx.execute(&s, p)
+    }
+    fn commit(self) -> Result<(), postgres::Error> {
+        self.tx.commit()
+    }
+}
+
 /// A small connection pool: at most `max` connections, reconnecting when one breaks.
 struct Pool {
     config: postgres::Config,
-    state: Mutex<(Vec<Client>, usize)>,
+    state: Mutex<(Vec<Session>, usize)>,
     freed: Condvar,
     max: usize,
 }
 
 struct Conn<'a> {
     pool: &'a Pool,
-    client: Option<Client>,
+    client: Option<Session>,
 }
 
 impl Pool {
@@ -83,7 +161,7 @@ impl Pool {
         let mut st = self.state.lock().unwrap_or_else(|p| p.into_inner());
         loop {
             if let Some(c) = st.0.pop() {
-                if c.is_closed() {
+                if c.client.is_closed() {
                     st.1 -= 1;
                     continue;
                 }
@@ -98,7 +176,10 @@ impl Pool {
                 return match self.config.connect(NoTls) {
                     Ok(c) => Ok(Conn {
                         pool: self,
-                        client: Some(c),
+                        client: Some(Session {
+                            client: c,
+                            cache: HashMap::new(),
+                        }),
                     }),
                     Err(e) => {
                         let mut st = self.state.lock().unwrap_or_else(|p| p.into_inner());
@@ -114,7 +195,7 @@ impl Pool {
 }
 
 impl Conn<'_> {
-    fn client(&mut self) -> &mut Client {
+    fn client(&mut self) -> &mut Session {
         self.client
             .as_mut()
             .unwrap_or_else(|| unreachable!("a connection is only emptied when dropped"))
@@ -130,7 +211,7 @@ impl Drop for Conn<'_> {
     fn drop(&mut self) {
         let mut st = self.pool.state.lock().unwrap_or_else(|p| p.into_inner());
         match self.client.take() {
-            Some(c) if !c.is_closed() => st.0.push(c),
+            Some(c) if !c.client.is_closed() => st.0.push(c),
             _ => st.1 -= 1,
         }
         self.pool.freed.notify_one();
@@ -218,7 +299,7 @@ impl PgStore {
     /// Apply every migration not yet recorded in `weir_migrations`. Returns those applied.
     pub fn migrate(&self) -> Result<Vec<i32>, StoreError> {
         let mut conn = self.work.get()?;
-        let c = conn.client();
+        let c = &mut conn.client().client;
         c.execute("SELECT pg_advisory_lock($1)", &[&MIGRATION_LOCK])
             .map_err(pg)?;
         let result = (|| {
@@ -295,7 +376,7 @@ impl PgStore {
 
     fn with<T>(
         &self,
-        f: impl FnOnce(&mut Client) -> Result<T, postgres::Error>,
+        f: impl FnOnce(&mut Session) -> Result<T, postgres::Error>,
     ) -> Result<T, StoreError> {
         blocking(|| {
             let mut conn = self.work.get()?;
@@ -306,7 +387,7 @@ impl PgStore {
     /// As [`PgStore::with`] for closures that return store errors of their own.
     fn with_store<T>(
         &self,
-        f: impl FnOnce(&mut Client) -> Result<T, StoreError>,
+        f: impl FnOnce(&mut Session) -> Result<T, StoreError>,
     ) -> Result<T, StoreError> {
         blocking(|| {
             let mut conn = self.work.get()?;
@@ -314,7 +395,7 @@ impl PgStore {
         })
     }
 
-    fn count(&self, sql: &str, params: &[&(dyn postgres::types::ToSql + Sync)]) -> usize {
+    fn count(&self, sql: &'static str, params: Params) -> usize {
         match self.with(|c| c.query_one(sql, params).map(|r| r.get::<_, i64>(0))) {
             Ok(n) => n.max(0) as usize,
             Err(e) => {
@@ -327,8 +408,8 @@ impl PgStore {
     fn set_item_lease(
         &self,
         queue: Queue,
-        pick: &str,
-        params: &[&(dyn postgres::types::ToSql + Sync)],
+        pick: &'static str,
+        params: Params,
         lease: Option<crate::store::Lease>,
     ) -> Result<Option<QueueItem>, StoreError> {
         self.with_store(|c| {
@@ -598,18 +679,18 @@ impl Backend for PgStore {
     }
 
     fn tree_sizes(&self) -> [usize; 8] {
-        let n = |t: &str| self.count(&format!("SELECT count(*) FROM {t}"), &[]);
-        let items = n("queue_items");
+        let n = |sql| self.count(sql, &[]);
+        let items = n("SELECT count(*) FROM queue_items");
         [
-            n("claims"),
-            n("revisions"),
-            n("history"),
+            n("SELECT count(*) FROM claims"),
+            n("SELECT count(*) FROM revisions"),
+            n("SELECT count(*) FROM history"),
             items,
             // sled keeps a separate rank tree; here the rank is an index on the same rows.
             items,
-            n("outcomes"),
-            n("outcome_revisions"),
-            n("holds"),
+            n("SELECT count(*) FROM outcomes"),
+            n("SELECT count(*) FROM outcome_revisions"),
+            n("SELECT count(*) FROM holds"),
         ]
     }
 
@@ -682,6 +763,7 @@ impl Backend for PgStore {
         self.with_store(|c| {
             let params: [&(dyn postgres::types::ToSql + Sync); 0] = [];
             let mut rows = c
+                .client
                 .query_raw(
                     "SELECT r.record, o.record FROM claims c
                      JOIN revisions r ON r.claim_id = c.claim_id AND r.revision = c.revision

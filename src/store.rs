@@ -302,6 +302,10 @@ impl Flusher {
     }
 }
 
+/// Writer lock stripes of the sled store (a claim names about six keys, so two unrelated
+/// claims share a stripe about one time in twenty).
+const LOCK_STRIPES: usize = 128;
+
 /// The embedded sled store.
 #[derive(Clone)]
 pub struct SledStore {
@@ -319,9 +323,9 @@ pub struct SledStore {
     /// every write that adds or removes an item: sled's own count is a full scan, and an
     /// intake that counted its queue on every decision slowed down as the queue grew.
     depths: Arc<[std::sync::atomic::AtomicI64; 4]>,
-    /// One writer at a time: sled serves one process, so one lock orders every intake,
-    /// outcome, hold and purge.
-    write_lock: Arc<std::sync::Mutex<()>>,
+    /// Writer locks, striped by key: writers naming a common claim or entity wait for each
+    /// other, the rest run in parallel (sled's transactions keep each write atomic).
+    stripes: Arc<[std::sync::Mutex<()>]>,
     /// Leasing reads an item and writes it back: one lease at a time.
     lease_lock: Arc<std::sync::Mutex<()>>,
 }
@@ -374,10 +378,10 @@ pub struct HistoryRow {
 /// suite against both.
 ///
 /// Writers call [`Backend::lock`] with the keys they touch (the claim's own key and every
-/// entity it names) and keep the guard while they read, decide and write: sled takes one
-/// process-wide lock; PostgreSQL takes session advisory locks on the keys, so two instances
-/// deciding claims that share a party run one after the other, and claims sharing nothing
-/// run in parallel.
+/// entity it names) and keep the guard while they read, decide and write: sled takes striped
+/// in-process locks; PostgreSQL takes session advisory locks on the keys, so that (on any
+/// instance) claims that share a party are decided one after the other, each seeing the one
+/// before, and claims sharing nothing run in parallel.
 pub trait Backend: Send + Sync {
     /// `sled` or `postgres`, for logs and `/readyz`.
     fn kind(&self) -> &'static str;
@@ -619,7 +623,9 @@ impl SledStore {
             db,
             flusher: Flusher::new(),
             depths: Arc::default(),
-            write_lock: Arc::default(),
+            stripes: (0..LOCK_STRIPES)
+                .map(|_| std::sync::Mutex::new(()))
+                .collect(),
             lease_lock: Arc::default(),
         }
         .with_counted_depths())
@@ -659,9 +665,19 @@ impl Backend for SledStore {
         Ok(())
     }
 
-    fn lock<'a>(&'a self, _keys: &[String]) -> Result<Box<dyn Held + 'a>, StoreError> {
-        let g = self.write_lock.lock().unwrap_or_else(|p| p.into_inner());
-        Ok(Box::new(g))
+    fn lock<'a>(&'a self, keys: &[String]) -> Result<Box<dyn Held + 'a>, StoreError> {
+        // Stripes in ascending order, each once: no two writers wait on each other in a cycle.
+        let mut idx: Vec<usize> = keys
+            .iter()
+            .map(|k| (crate::features::stable_hash(k) % LOCK_STRIPES as u64) as usize)
+            .collect();
+        idx.sort_unstable();
+        idx.dedup();
+        let guards: Vec<std::sync::MutexGuard<'a, ()>> = idx
+            .into_iter()
+            .map(|i| self.stripes[i].lock().unwrap_or_else(|p| p.into_inner()))
+            .collect();
+        Ok(Box::new(guards))
     }
 
     /// Items in a queue, counted by scanning the store (what [`Store::queue_depth`] keeps

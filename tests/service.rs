@@ -668,9 +668,21 @@ fn real_server_keeps_acknowledged_claims_across_restart() {
     for secret in [&keys.all, &keys.claims_system, &keys.investigator] {
         assert!(!log.contains(secret.as_str()), "a key reached the log");
     }
+    // Timings are numbers that may happen to contain the amount's digits: drop them first.
+    let without_timings: String = log
+        .lines()
+        .map(|l| match serde_json::from_str::<Value>(l) {
+            Ok(Value::Object(mut m)) => {
+                m.remove("millis");
+                Value::Object(m).to_string()
+            }
+            _ => l.to_string(),
+        })
+        .collect::<Vec<_>>()
+        .join("\n");
     for content in ["K-1", "R-9", "B-3", "9000"] {
         assert!(
-            !log.contains(content),
+            !without_timings.contains(content),
             "claim content {content} reached the log"
         );
     }

@@ -3,6 +3,10 @@ FROM rust:1.95-bookworm AS build
 WORKDIR /src
 COPY Cargo.toml Cargo.lock ./
 COPY src ./src
+COPY migrations ./migrations
+# Cargo reads every declared target when it loads the manifest.
+COPY benches ./benches
+COPY examples ./examples
 COPY config ./config
 RUN cargo build --release --locked
 

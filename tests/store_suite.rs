@@ -9,13 +9,11 @@
 
 use chrono::{NaiveDate, TimeZone, Utc};
 use std::collections::{BTreeMap, BTreeSet, HashSet};
-use std::io::Cursor;
-use std::path::{Path, PathBuf};
-use std::sync::{Arc, Mutex, OnceLock};
-use weir::config::Config;
+use std::path::Path;
+use std::sync::{Arc, Mutex};
 use weir::features::{self, MemoryHistory};
 use weir::feedback::{Outcome, OutcomeReport};
-use weir::model::{Model, ModelArtifact};
+use weir::model::Model;
 use weir::rules::{Queue, Routing, RuleSet};
 use weir::service::Service;
 use weir::store::{IntakeStatus, Store, StoreError};

@@ -61,7 +61,13 @@ services_stop() {
   local bin
   bin="$(ls -d /usr/lib/postgresql/*/bin | sort -V | tail -1)"
   as_pg "$bin/pg_ctl" -D "$SERVICES_DIR/pg/data" -m fast stop >/dev/null 2>&1 || true
-  if [ -f "$SERVICES_DIR/nats/pid" ]; then kill "$(cat "$SERVICES_DIR/nats/pid")" 2>/dev/null || true; fi
-  rm -rf "$SERVICES_DIR"
+  if [ -f "$SERVICES_DIR/nats/pid" ]; then
+    local pid
+    pid="$(cat "$SERVICES_DIR/nats/pid")"
+    kill "$pid" 2>/dev/null || true
+    # Let it finish writing before its folder goes.
+    wait "$pid" 2>/dev/null || true
+  fi
+  rm -rf "$SERVICES_DIR" || true
   SERVICES_DIR=""
 }

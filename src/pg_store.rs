@@ -146,6 +146,8 @@ impl Tx<'_> {
 /// A small connection pool: at most `max` connections, reconnecting when one breaks.
 struct Pool {
     config: postgres::Config,
+    /// Run once on each new connection.
+    setup: &'static str,
     state: Mutex<(Vec<Session>, usize)>,
     freed: Condvar,
     max: usize,
@@ -173,7 +175,11 @@ impl Pool {
             if st.1 < self.max {
                 st.1 += 1;
                 drop(st);
-                return match self.config.connect(NoTls) {
+                let connected = self.config.connect(NoTls).and_then(|mut c| {
+                    c.batch_execute(self.setup)?;
+                    Ok(c)
+                });
+                return match connected {
                     Ok(c) => Ok(Conn {
                         pool: self,
                         client: Some(Session {
@@ -269,18 +275,29 @@ impl PgStore {
     /// Connect, apply pending migrations, and keep up to `pool` connections for work (and as
     /// many for locks).
     pub fn connect(url: &str, pool: usize) -> Result<PgStore, StoreError> {
-        let config: postgres::Config = url.parse().map_err(|e: postgres::Error| {
+        let mut config: postgres::Config = url.parse().map_err(|e: postgres::Error| {
             StoreError::Postgres(format!("store.postgres_url: {e}"))
         })?;
-        let mk = |max| Pool {
+        // Notice a peer that vanished (a partition, a dead instance) in about a minute, not
+        // after the two-hour keepalive default, unless the URL says otherwise.
+        if config.get_keepalives_idle() == std::time::Duration::from_secs(2 * 60 * 60) {
+            config.keepalives_idle(std::time::Duration::from_secs(30));
+        }
+        let mk = |max, setup| Pool {
             config: config.clone(),
+            setup,
             state: Mutex::new((Vec::new(), 0)),
             freed: Condvar::new(),
             max,
         };
         let store = PgStore {
-            work: mk(pool.max(1)),
-            locks: mk(pool.max(1)),
+            work: mk(pool.max(1), "SET application_name = 'weir'"),
+            // A claim waits at most this long for another's locks; then its intake fails
+            // with a retryable error instead of holding a thread without end.
+            locks: mk(
+                pool.max(1),
+                "SET application_name = 'weir-locks'; SET lock_timeout = '30s'",
+            ),
             flush_seconds: prometheus::Histogram::with_opts(
                 prometheus::HistogramOpts::new(
                     "weir_store_flush_seconds",
@@ -905,16 +922,19 @@ impl Backend for PgStore {
         from: i64,
         to: i64,
     ) -> Result<Vec<String>, StoreError> {
-        self.with(|c| {
+        let mut rows: Vec<(i64, u64, String)> = self.with(|c| {
             Ok(c.query(
-                "SELECT claim_id FROM history WHERE entity = $1 AND at >= $2 AND at < $3
-                 ORDER BY at, claim_hash",
+                "SELECT at, claim_hash, claim_id FROM history
+                 WHERE entity = $1 AND at >= $2 AND (at < $3 OR $3 = 9223372036854775807)",
                 &[&entity, &from, &to],
             )?
             .iter()
-            .map(|r| r.get(0))
+            .map(|r| (r.get(0), r.get::<_, i64>(1) as u64, r.get(2)))
             .collect())
-        })
+        })?;
+        // sled's order: time, then claim hash as unsigned.
+        rows.sort_unstable();
+        Ok(rows.into_iter().map(|(_, _, id)| id).collect())
     }
 
     fn history_dump(&self) -> Result<Vec<HistoryRow>, StoreError> {

@@ -98,6 +98,9 @@ pub struct Service {
     pub stream_health: Arc<std::sync::OnceLock<Arc<crate::stream::Health>>>,
 }
 
+/// The caller recorded on revisions taken from the claims stream.
+pub const STREAM_CALLER: &str = "stream";
+
 /// The lock key of a claim's own records (entity keys are `kind:id`; this cannot clash).
 fn claim_lock_key(claim_id: &str) -> String {
     format!("claim-record:{claim_id}")
@@ -233,6 +236,28 @@ impl Service {
         now: DateTime<Utc>,
         submitted_by: Option<&str>,
     ) -> Result<(DecisionRecord, IntakeStatus), ServiceError> {
+        self.decide_with(claim, now, submitted_by, None)
+    }
+
+    /// Decide a claim taken from the stream at `sequence`. A version of the claim from an
+    /// earlier message than the one stored (redelivered late, or overtaken by a newer version
+    /// on another instance) is answered with the stored decision and never overwrites it.
+    pub fn decide_from_stream(
+        &self,
+        claim: Claim,
+        now: DateTime<Utc>,
+        sequence: u64,
+    ) -> Result<(DecisionRecord, IntakeStatus), ServiceError> {
+        self.decide_with(claim, now, Some(STREAM_CALLER), Some(sequence))
+    }
+
+    fn decide_with(
+        &self,
+        claim: Claim,
+        now: DateTime<Utc>,
+        submitted_by: Option<&str>,
+        stream_sequence: Option<u64>,
+    ) -> Result<(DecisionRecord, IntakeStatus), ServiceError> {
         let hash = content_hash(&claim);
         // Held until the decision is written: no other writer touches this claim or any
         // entity it names meanwhile (across instances on a shared store).
@@ -254,6 +279,20 @@ impl Service {
             Some(h) => self.store.decision(&claim.claim_id, h.revision)?,
             None => None,
         };
+        if let (Some(seq), Some(p)) = (stream_sequence, &previous)
+            && p.stream_sequence.is_some_and(|stored| stored > seq)
+        {
+            tracing::info!(
+                claim_id = %p.claim_id,
+                seq,
+                "stream message older than the stored revision: not applied"
+            );
+            self.metrics
+                .claims_received
+                .with_label_values(&["duplicate"])
+                .inc();
+            return Ok((p.clone(), IntakeStatus::Duplicate));
+        }
         let t0 = Instant::now();
         let model = self.model();
         let rules = self.rules();
@@ -337,6 +376,7 @@ impl Service {
             claim,
             challenger,
             submitted_by: submitted_by.map(String::from),
+            stream_sequence,
         };
         // A claim already adjudicated is re-scored for the record but not queued again.
         // (An outcome needs a stored claim: a new claim cannot have one.)
@@ -407,6 +447,22 @@ impl Service {
         } else {
             self.decide_as(claim, now, submitted_by)?
         };
+        self.store.durable().await;
+        Ok(Decision::from_record(&rec, status))
+    }
+
+    /// As [`Service::intake`] for a claim taken from the stream at `sequence`.
+    pub async fn intake_from_stream(
+        &self,
+        claim: Claim,
+        now: DateTime<Utc>,
+        sequence: u64,
+    ) -> Result<Decision, ServiceError> {
+        let svc = self.clone();
+        let (rec, status) =
+            tokio::task::spawn_blocking(move || svc.decide_from_stream(claim, now, sequence))
+                .await
+                .map_err(|e| ServiceError::Worker(e.to_string()))??;
         self.store.durable().await;
         Ok(Decision::from_record(&rec, status))
     }

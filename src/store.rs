@@ -99,6 +99,9 @@ pub struct DecisionRecord {
     /// Name of the API key that filed this revision (a claims system reads only its own).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub submitted_by: Option<String>,
+    /// Sequence of the stream message this revision came from, when it came from the stream.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub stream_sequence: Option<u64>,
 }
 
 /// A legal hold: the claim is exempt from retention purges until the hold is lifted.

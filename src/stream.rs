@@ -5,7 +5,9 @@
 //! the decision is durable; publish it on the decisions subject (message id `claim:revision`,
 //! so JetStream drops a republication within its duplicate window); only then acknowledge the
 //! claim. A claim redelivered after a crash (or a lost acknowledgement) is recognised by its id
-//! and content hash and answered with the stored decision, not scored again.
+//! and content hash and answered with the stored decision, not scored again; so is an older
+//! version of a claim delivered after a newer one (each decision records the stream sequence
+//! it came from, and a lower sequence never overwrites a higher one).
 //!
 //! A message that can never be decided goes to the dead-letter subject with the reason in its
 //! headers and is terminated: at once when it is not a valid claim (it would fail the same way
@@ -128,7 +130,10 @@ async fn consume(
                 durable_name: Some(cfg.consumer.clone()),
                 ack_policy: jetstream::consumer::AckPolicy::Explicit,
                 ack_wait: Duration::from_secs(cfg.ack_wait_seconds),
-                max_deliver: cfg.max_deliver,
+                // No server-side limit: the server would stop delivering a message after its
+                // last try and leave it in the stream unacknowledged. weir counts tries itself
+                // and dead-letters at `max_deliver`, so every message ends acknowledged.
+                max_deliver: -1,
                 ..Default::default()
             },
         )
@@ -154,6 +159,8 @@ async fn consume(
         let Some(msg) = next else { break };
         let msg = msg?;
         let permit = Arc::clone(&slots).acquire_owned().await?;
+        // The wait for a slot counts against the message's ack wait: say it is in hand.
+        let _ = msg.ack_with(AckKind::Progress).await;
         let (svc, js, cfg) = (svc.clone(), js.clone(), Arc::clone(&cfg));
         tokio::spawn(async move {
             handle(&svc, &js, &cfg, msg).await;
@@ -195,7 +202,22 @@ async fn handle(
         }
     };
     let claim_id = claim.claim_id.clone();
-    match decide_and_publish(svc, js, cfg, claim).await {
+    // While deciding (a claim may wait on another one's locks), keep telling the stream the
+    // message is in hand, so it is not delivered to a second instance meanwhile.
+    let decided = {
+        let work = decide_and_publish(svc, js, cfg, claim, sequence);
+        tokio::pin!(work);
+        let every = Duration::from_millis((cfg.ack_wait_seconds * 1000 / 2).max(500));
+        loop {
+            tokio::select! {
+                r = &mut work => break r,
+                _ = tokio::time::sleep(every) => {
+                    let _ = msg.ack_with(AckKind::Progress).await;
+                }
+            }
+        }
+    };
+    match decided {
         Ok(status) => {
             svc.metrics.stream_claims.with_label_values(&[status]).inc();
             if let Err(e) = msg.ack().await {
@@ -219,9 +241,10 @@ async fn decide_and_publish(
     js: &jetstream::Context,
     cfg: &StreamConfig,
     claim: Claim,
+    sequence: u64,
 ) -> anyhow::Result<&'static str> {
     let decision: Decision = svc
-        .intake_as(claim, chrono::Utc::now(), Some("stream"))
+        .intake_from_stream(claim, chrono::Utc::now(), sequence)
         .await?;
     let mut headers = async_nats::HeaderMap::new();
     headers.insert(
@@ -275,7 +298,8 @@ async fn dead_letter(
         tracing::warn!(reason, sequence, "claims stream: message dead-lettered");
         let _ = msg.ack_with(AckKind::Term).await;
     } else {
-        // Keep it in the stream rather than lose it: it is delivered again later.
+        // Keep it in the stream rather than lose it: it is delivered again later (the consumer
+        // has no delivery limit of its own, see `consume`).
         tracing::error!(
             reason,
             sequence,

@@ -461,6 +461,12 @@ fn two_instances_share_one_stream_and_one_database() {
         redelivered > 0.0,
         "no message was redelivered after the kill"
     );
+    // The two poison messages came after every claim, long after the kill: the survivor
+    // dead-lettered them and counted them in /metrics.
+    assert_eq!(
+        dead, 2.0,
+        "dead letters counted in weir_stream_dead_letters_total"
+    );
 }
 
 /// Throughput of one instance against two on the same claims (not a pass/fail check: run

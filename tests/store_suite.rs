@@ -136,6 +136,24 @@ fn duplicates_revisions_and_conflicts(store: Store) {
         .collect();
     assert_eq!(amounts, HashSet::from([claim.claimed_amount.to_bits()]));
 
+    // From the stream: a version from an earlier message, arriving after a later one (a late
+    // redelivery, or two instances racing), is answered with the stored decision.
+    let mut older = weir::demo_data::generate(2, 4).remove(1).claim;
+    older.claim_id = "STREAMED-1".into();
+    let mut newer = older.clone();
+    newer.claimed_amount += 10.0;
+    let (n, s) = svc.decide_from_stream(newer.clone(), now(), 12).unwrap();
+    assert_eq!(
+        (s, n.revision, n.stream_sequence),
+        (IntakeStatus::New, 1, Some(12))
+    );
+    let (o, s) = svc.decide_from_stream(older.clone(), now(), 11).unwrap();
+    assert_eq!((s, &o), (IntakeStatus::Duplicate, &n));
+    assert_eq!(svc.store.revisions(&older.claim_id).unwrap().len(), 1);
+    newer.claimed_amount += 10.0;
+    let (r, s) = svc.decide_from_stream(newer, now(), 13).unwrap();
+    assert_eq!((s, r.revision), (IntakeStatus::Revised, 2));
+
     let sizes = svc.store.tree_sizes();
     let again = svc.store.record(&second, Some(&first), None);
     match (svc.store.kind(), again) {

@@ -135,22 +135,7 @@ struct Instance {
 }
 
 fn start(config: &Path, log: &str) -> Instance {
-    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_weir"))
-        .args(["serve", "--config", config.to_str().unwrap()])
-        .stdout(std::process::Stdio::piped())
-        .stderr(std::fs::File::create(config.with_file_name(log)).unwrap())
-        .spawn()
-        .unwrap();
-    let mut line = String::new();
-    let mut out = std::io::BufReader::new(child.stdout.take().unwrap());
-    std::io::BufRead::read_line(&mut out, &mut line).unwrap();
-    let addr = line
-        .trim()
-        .rsplit("http://")
-        .next()
-        .unwrap()
-        .parse()
-        .unwrap_or_else(|_| panic!("no address in {line:?}"));
+    let (child, addr) = common::start_server(config, log);
     Instance { child, addr }
 }
 

@@ -17,6 +17,8 @@ use weir::service::Service;
 use weir::store::Store;
 use weir::train::{self, BadLines};
 
+mod common;
+
 fn tempdir(tag: &str) -> PathBuf {
     use std::sync::atomic::{AtomicUsize, Ordering};
     static N: AtomicUsize = AtomicUsize::new(0);
@@ -592,29 +594,7 @@ fn server_config_with(dir: &Path, server_extra: &str) -> (PathBuf, Keys) {
 
 /// Start the real binary and read the address it prints.
 fn start_server(config: &Path) -> (std::process::Child, std::net::SocketAddr) {
-    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_weir"))
-        .args(["serve", "--config", config.to_str().unwrap()])
-        .stdout(std::process::Stdio::piped())
-        .stderr(
-            std::fs::OpenOptions::new()
-                .create(true)
-                .append(true)
-                .open(config.with_file_name("serve.log"))
-                .unwrap(),
-        )
-        .spawn()
-        .unwrap();
-    let mut line = String::new();
-    let mut out = std::io::BufReader::new(child.stdout.take().unwrap());
-    std::io::BufRead::read_line(&mut out, &mut line).unwrap();
-    let addr = line
-        .trim()
-        .rsplit("http://")
-        .next()
-        .unwrap()
-        .parse()
-        .unwrap_or_else(|_| panic!("no address in {line:?}"));
-    (child, addr)
+    common::start_server(config, "serve.log")
 }
 
 /// The real binary on port 0: serve, decide, stop with SIGTERM, start again on the same sled

@@ -54,3 +54,34 @@ pub fn fresh_database(url: &str) -> String {
         .unwrap();
     format!("{url} dbname={name}")
 }
+
+/// Start the real `weir serve` on `config` (stderr appended to `log` beside it) and read the
+/// address it prints on its first line.
+pub fn start_server(
+    config: &std::path::Path,
+    log: &str,
+) -> (std::process::Child, std::net::SocketAddr) {
+    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_weir"))
+        .args(["serve", "--config", config.to_str().unwrap()])
+        .stdout(std::process::Stdio::piped())
+        .stderr(
+            std::fs::OpenOptions::new()
+                .create(true)
+                .append(true)
+                .open(config.with_file_name(log))
+                .unwrap(),
+        )
+        .spawn()
+        .unwrap();
+    let mut line = String::new();
+    let mut out = std::io::BufReader::new(child.stdout.take().unwrap());
+    std::io::BufRead::read_line(&mut out, &mut line).unwrap();
+    let addr = line
+        .trim()
+        .rsplit("http://")
+        .next()
+        .unwrap()
+        .parse()
+        .unwrap_or_else(|_| panic!("no address in {line:?}"));
+    (child, addr)
+}

@@ -1069,6 +1069,14 @@ async fn readyz(State(st): State<AppState>) -> Response {
 }
 
 async fn metrics(State(st): State<AppState>) -> Response {
+    // Queue depths are read at scrape time: a shared store answers them with a query each,
+    // which has no place on every decision's path.
+    if st.svc.store.remote() {
+        let svc = st.svc.clone();
+        let _ = tokio::task::spawn_blocking(move || svc.refresh_depths()).await;
+    } else {
+        st.svc.refresh_depths();
+    }
     let mut r = st.svc.metrics.render().into_response();
     r.headers_mut().insert(
         header::CONTENT_TYPE,

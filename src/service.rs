@@ -210,7 +210,9 @@ impl Service {
         }
     }
 
-    fn refresh_depths(&self) {
+    /// Set the queue-depth gauges from the store. Called when metrics are scraped (and after
+    /// a purge), not on every decision: on a shared store each depth is a query.
+    pub fn refresh_depths(&self) {
         for q in Queue::WORKED {
             self.metrics
                 .queue_depth
@@ -411,17 +413,6 @@ impl Service {
             .decisions
             .with_label_values(&[rec.queue.as_str()])
             .inc();
-        for q in [Some(rec.queue), previous.as_ref().map(|p| p.queue)]
-            .into_iter()
-            .flatten()
-        {
-            if q != Queue::NoReview {
-                self.metrics
-                    .queue_depth
-                    .with_label_values(&[q.as_str()])
-                    .set(self.store.queue_depth(q) as i64);
-            }
-        }
         Ok((rec, status))
     }
 
@@ -511,12 +502,6 @@ impl Service {
                     .outcomes
                     .with_label_values(&[rec.report.outcome.as_str()])
                     .inc();
-                if decision.queue != Queue::NoReview {
-                    self.metrics
-                        .queue_depth
-                        .with_label_values(&[decision.queue.as_str()])
-                        .set(self.store.queue_depth(decision.queue) as i64);
-                }
                 (rec, true)
             }
         };

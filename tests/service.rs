@@ -501,7 +501,7 @@ async fn queues_list_lease_release() {
 async fn operations_routes_and_openapi_match_the_router() {
     let dir = tempdir("ops");
     let svc = service(&dir);
-    let app = http::app(svc, settings());
+    let app = http::app(svc.clone(), settings());
     post_claim(&app, &claim("M-1")).await;
     let (status, _, body) = call(&app, Method::GET, "/metrics", None, vec![]).await;
     assert_eq!(status, StatusCode::OK);
@@ -516,6 +516,19 @@ async fn operations_routes_and_openapi_match_the_router() {
     ] {
         assert!(text.contains(series), "metrics lack {series}:\n{text}");
     }
+    // The gauges are read from the store at scrape time: each equals the queue's depth.
+    for q in Queue::WORKED {
+        let line = format!(
+            "weir_queue_depth{{queue=\"{}\"}} {}",
+            q.as_str(),
+            svc.store.queue_depth(q)
+        );
+        assert!(text.contains(&line), "metrics lack {line}:\n{text}");
+    }
+    assert!(
+        Queue::WORKED.iter().any(|&q| svc.store.queue_depth(q) > 0),
+        "M-1 was queued"
+    );
     let (status, _, r) = call(&app, Method::GET, "/readyz", None, vec![]).await;
     assert_eq!(status, StatusCode::OK);
     assert_eq!(r["status"], "ready");

@@ -152,6 +152,13 @@ pub struct StoreConfig {
     pub path: std::path::PathBuf,
     /// sled page cache, in MiB.
     pub cache_mb: u64,
+    /// Entity histories kept in memory by the sled store (write-through; least recently
+    /// loaded first out), in MiB. Spares the history range scans that dominate a decision.
+    pub history_cache_mb: u64,
+    /// Least time between two disk flushes of the sled store, in microseconds: an
+    /// acknowledgement waits up to this much longer and one flush covers every write made
+    /// meanwhile (group commit). 0 flushes as soon as a write waits.
+    pub group_commit_us: u64,
     /// PostgreSQL connection string (libpq key=value form or a `postgresql://` URL). A password
     /// belongs in `WEIR_STORE_POSTGRES_URL`, set by the service manager, not in this file.
     pub postgres_url: String,
@@ -172,6 +179,8 @@ impl Default for StoreConfig {
             backend: StoreBackend::Sled,
             path: "data/weir.sled".into(),
             cache_mb: 128,
+            history_cache_mb: 32,
+            group_commit_us: 1_000,
             postgres_url: "host=127.0.0.1 user=weir dbname=weir".into(),
             postgres_pool: 8,
         }

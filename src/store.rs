@@ -243,6 +243,8 @@ fn encode<T: Serialize>(v: &T) -> Vec<u8> {
 /// Group commit: see the module documentation.
 pub struct Flusher {
     written: AtomicU64,
+    /// Least time between the starts of two flushes, in microseconds.
+    gap_us: AtomicU64,
     kick: Notify,
     done: watch::Sender<u64>,
     pub flush_seconds: prometheus::Histogram,
@@ -262,6 +264,7 @@ impl Flusher {
         .unwrap_or_else(|_| unreachable!("static histogram options are valid"));
         Arc::new(Flusher {
             written: AtomicU64::new(0),
+            gap_us: AtomicU64::new(DEFAULT_GROUP_COMMIT_US),
             kick: Notify::new(),
             done: watch::channel(0).0,
             flush_seconds,
@@ -272,8 +275,18 @@ impl Flusher {
     pub fn spawn(self: &Arc<Self>, db: sled::Db) {
         let me = Arc::clone(self);
         tokio::spawn(async move {
+            let mut last = Instant::now();
             loop {
                 me.kick.notified().await;
+                // Flushes start at most every `gap`: a busy service waits a little longer for
+                // its acknowledgement and one flush covers more writes (each flush costs a
+                // disk sync and several thread hand-overs, whatever it carries).
+                let gap = std::time::Duration::from_micros(me.gap_us.load(Ordering::Relaxed));
+                let since = last.elapsed();
+                if since < gap {
+                    tokio::time::sleep(gap - since).await;
+                }
+                last = Instant::now();
                 let target = me.written.load(Ordering::SeqCst);
                 let t0 = Instant::now();
                 match db.flush_async().await {
@@ -305,6 +318,166 @@ impl Flusher {
     }
 }
 
+/// History cache of [`Store::open`] (the configuration's default).
+pub const DEFAULT_HISTORY_CACHE_BYTES: u64 = 32 << 20;
+/// Least time between two flushes of [`Store::open`] (the configuration's default).
+pub const DEFAULT_GROUP_COMMIT_US: u64 = 1_000;
+
+/// Shards of the [`HistoryCache`] (writers on two cores rarely meet on one).
+const CACHE_SHARDS: usize = 16;
+/// An entity with more events than this is read from the index, not cached (one hot entity
+/// must not take the whole budget).
+const CACHE_MAX_EVENTS: usize = 50_000;
+/// Bytes counted for one cached entity besides its events (map slot, key, vector header).
+const CACHE_ENTRY_OVERHEAD: usize = 96;
+
+/// Entity histories held in memory, write-through, so that a decision does not scan the
+/// history index (sled's range iterator copies the node it walks on every step, and a claim
+/// names about six entities). Each entity's list holds every event the index has for it,
+/// sorted by time, so any window is answered exactly as the index would answer it.
+///
+/// Consistency: a decision reads and writes an entity's history under that entity's writer
+/// lock, and [`SledStore::record`] updates the cached lists after its transaction commits, so
+/// a cached list never misses a write. A purge does not take entity locks: it bumps `epoch`
+/// and then drops the claim's entities from the cache, and a list loaded from the index while
+/// a purge ran (its `epoch` changed) is not kept. When a shard is over its share of the budget
+/// it drops entries in map order (arbitrary, so roughly random) until it is at half.
+struct HistoryCache {
+    shards: Vec<std::sync::Mutex<CacheShard>>,
+    shard_budget: usize,
+    epoch: AtomicU64,
+    hits: AtomicU64,
+    misses: AtomicU64,
+}
+
+#[derive(Default)]
+struct CacheShard {
+    lists: std::collections::HashMap<Box<str>, Vec<HistoryEvent>, crate::features::FnvBuild>,
+    bytes: usize,
+}
+
+fn entry_bytes(key: &str, events: usize) -> usize {
+    CACHE_ENTRY_OVERHEAD + key.len() + events * std::mem::size_of::<HistoryEvent>()
+}
+
+fn event_order(a: &HistoryEvent, b: &HistoryEvent) -> std::cmp::Ordering {
+    (a.at, a.claim).cmp(&(b.at, b.claim))
+}
+
+impl HistoryCache {
+    fn new(budget_bytes: u64) -> HistoryCache {
+        HistoryCache {
+            shards: (0..CACHE_SHARDS)
+                .map(|_| std::sync::Mutex::default())
+                .collect(),
+            shard_budget: usize::try_from(budget_bytes).unwrap_or(usize::MAX) / CACHE_SHARDS,
+            epoch: AtomicU64::new(0),
+            hits: AtomicU64::new(0),
+            misses: AtomicU64::new(0),
+        }
+    }
+
+    fn enabled(&self) -> bool {
+        self.shard_budget > 0
+    }
+
+    fn shard(&self, entity: &str) -> std::sync::MutexGuard<'_, CacheShard> {
+        let i = (crate::features::stable_hash(entity) % CACHE_SHARDS as u64) as usize;
+        self.shards[i].lock().unwrap_or_else(|p| p.into_inner())
+    }
+
+    /// Call `f` for the cached events of `entity` in `[from, to)`; `false` when not cached.
+    fn visit(&self, entity: &str, from: i64, to: i64, f: &mut dyn FnMut(&HistoryEvent)) -> bool {
+        let shard = self.shard(entity);
+        let Some(list) = shard.lists.get(entity) else {
+            self.misses.fetch_add(1, Ordering::Relaxed);
+            return false;
+        };
+        self.hits.fetch_add(1, Ordering::Relaxed);
+        let start = list.partition_point(|e| e.at < from);
+        for e in list[start..].iter().take_while(|e| e.at < to) {
+            f(e);
+        }
+        true
+    }
+
+    /// Keep `events` (every event of `entity`, read from the index when the epoch was
+    /// `epoch`) unless a purge ran meanwhile.
+    fn fill(&self, entity: &str, mut events: Vec<HistoryEvent>, epoch: u64) {
+        if events.len() > CACHE_MAX_EVENTS {
+            return;
+        }
+        events.sort_by(event_order);
+        let mut shard = self.shard(entity);
+        if self.epoch.load(Ordering::SeqCst) != epoch || shard.lists.contains_key(entity) {
+            return;
+        }
+        shard.bytes += entry_bytes(entity, events.len());
+        shard.lists.insert(entity.into(), events);
+        if shard.bytes > self.shard_budget {
+            let keep = self.shard_budget / 2;
+            let mut out = Vec::new();
+            let mut bytes = shard.bytes;
+            for (k, v) in &shard.lists {
+                if bytes <= keep {
+                    break;
+                }
+                bytes -= entry_bytes(k, v.len());
+                out.push(k.clone());
+            }
+            for k in out {
+                shard.lists.remove(&k);
+            }
+            shard.bytes = bytes;
+        }
+    }
+
+    /// Apply a committed write to the entities that are cached: `removed` events out,
+    /// `added` events in.
+    fn apply(&self, removed: &[(String, HistoryEvent)], added: &[(String, HistoryEvent)]) {
+        for (entity, e) in removed {
+            let mut shard = self.shard(entity);
+            if let Some(list) = shard.lists.get_mut(entity.as_str()) {
+                let before = list.len();
+                list.retain(|x| !(x.at == e.at && x.claim == e.claim));
+                let gone = before - list.len();
+                shard.bytes = shard
+                    .bytes
+                    .saturating_sub(gone * std::mem::size_of::<HistoryEvent>());
+            }
+        }
+        for (entity, e) in added {
+            let mut shard = self.shard(entity);
+            let too_long = match shard.lists.get_mut(entity.as_str()) {
+                Some(list) => {
+                    // The index has one entry per (entity, time, claim): replace, never double.
+                    match list.binary_search_by(|x| event_order(x, e)) {
+                        Ok(i) => list[i] = *e,
+                        Err(i) => list.insert(i, *e),
+                    }
+                    list.len() > CACHE_MAX_EVENTS
+                }
+                None => continue,
+            };
+            shard.bytes += std::mem::size_of::<HistoryEvent>();
+            if too_long && let Some(list) = shard.lists.remove(entity.as_str()) {
+                shard.bytes = shard.bytes.saturating_sub(entry_bytes(entity, list.len()));
+            }
+        }
+    }
+
+    /// Forget `entities` after a purge removed events from the index.
+    fn forget(&self, entities: &[(String, HistoryEvent)]) {
+        self.epoch.fetch_add(1, Ordering::SeqCst);
+        for (entity, _) in entities {
+            let mut shard = self.shard(entity);
+            if let Some(list) = shard.lists.remove(entity.as_str()) {
+                shard.bytes = shard.bytes.saturating_sub(entry_bytes(entity, list.len()));
+            }
+        }
+    }
+}
+
 /// Writer lock stripes of the sled store (a claim names about six keys, so two unrelated
 /// claims share a stripe about one time in twenty).
 const LOCK_STRIPES: usize = 128;
@@ -331,6 +504,7 @@ pub struct SledStore {
     stripes: Arc<[std::sync::Mutex<()>]>,
     /// Leasing reads an item and writes it back: one lease at a time.
     lease_lock: Arc<std::sync::Mutex<()>>,
+    history_cache: Arc<HistoryCache>,
 }
 
 fn queue_index(q: Queue) -> usize {
@@ -587,7 +761,11 @@ impl std::ops::Deref for Store {
 impl Store {
     /// Open (or create) the embedded sled store in `path` (the default back end).
     pub fn open(path: &std::path::Path, cache_bytes: u64) -> Result<Store, StoreError> {
-        Ok(Store(Arc::new(SledStore::open(path, cache_bytes)?)))
+        Ok(Store(Arc::new(SledStore::open(
+            path,
+            cache_bytes,
+            DEFAULT_HISTORY_CACHE_BYTES,
+        )?)))
     }
 
     pub fn from_backend(b: Arc<dyn Backend>) -> Store {
@@ -598,7 +776,11 @@ impl Store {
     /// `store.postgres_url` (migrations applied first).
     pub fn from_config(c: &crate::config::StoreConfig) -> Result<Store, StoreError> {
         match c.backend {
-            crate::config::StoreBackend::Sled => Store::open(&c.path, c.cache_mb << 20),
+            crate::config::StoreBackend::Sled => {
+                let s = SledStore::open(&c.path, c.cache_mb << 20, c.history_cache_mb << 20)?;
+                s.flusher.gap_us.store(c.group_commit_us, Ordering::Relaxed);
+                Ok(Store(Arc::new(s)))
+            }
             crate::config::StoreBackend::Postgres => Ok(Store(Arc::new(
                 crate::pg_store::PgStore::connect(&c.postgres_url, c.postgres_pool)?,
             ))),
@@ -607,8 +789,13 @@ impl Store {
 }
 
 impl SledStore {
-    /// Open (or create) the store in `path`. `cache_bytes` sizes sled's page cache.
-    pub fn open(path: &std::path::Path, cache_bytes: u64) -> Result<SledStore, StoreError> {
+    /// Open (or create) the store in `path`. `cache_bytes` sizes sled's page cache,
+    /// `history_cache_bytes` the entity histories kept in memory (0: none).
+    pub fn open(
+        path: &std::path::Path,
+        cache_bytes: u64,
+        history_cache_bytes: u64,
+    ) -> Result<SledStore, StoreError> {
         let db = sled::Config::new()
             .path(path)
             .cache_capacity(cache_bytes)
@@ -630,6 +817,7 @@ impl SledStore {
                 .map(|_| std::sync::Mutex::new(()))
                 .collect(),
             lease_lock: Arc::default(),
+            history_cache: Arc::new(HistoryCache::new(history_cache_bytes)),
         }
         .with_counted_depths())
     }
@@ -769,6 +957,7 @@ impl Backend for SledStore {
                 }
                 Ok::<bool, ConflictableTransactionError<String>>(removed)
             })?;
+        self.history_cache.apply(&old_events, &new_events);
         if let (true, Some(p)) = (removed, previous) {
             self.adjust_depth(p.queue, -1);
         }
@@ -1034,6 +1223,7 @@ impl Backend for SledStore {
                     TransactionError::Storage(s) => Err(StoreError::Sled(s)),
                 },
                 |dequeued| {
+                    self.history_cache.forget(&events);
                     if let (true, Some(r)) = (dequeued, &latest) {
                         self.adjust_depth(r.queue, -1);
                     }
@@ -1095,10 +1285,27 @@ impl Backend for SledStore {
     }
 }
 
-impl HistoryView for SledStore {
-    fn for_each_event(&self, entity: &str, from: i64, to: i64, f: &mut dyn FnMut(&HistoryEvent)) {
+impl SledStore {
+    /// Entity-history cache lookups since open: (answered from memory, read from the index).
+    pub fn history_cache_counts(&self) -> (u64, u64) {
+        let c = &self.history_cache;
+        (
+            c.hits.load(Ordering::Relaxed),
+            c.misses.load(Ordering::Relaxed),
+        )
+    }
+
+    /// Events of `entity` in `[from, to)` read from the index itself.
+    fn scan_events(&self, entity: &str, from: i64, to: i64, f: &mut dyn FnMut(&HistoryEvent)) {
         let start = history_key(entity, from, 0);
-        let end = history_key(entity, to, 0);
+        let end = if to == i64::MAX {
+            // Past every key of `entity` (ids hold no control characters).
+            let mut e = entity.as_bytes().to_vec();
+            e.push(1);
+            e
+        } else {
+            history_key(entity, to, 0)
+        };
         let plen = entity.len() + 1;
         for kv in self.history.range(start..end) {
             let Ok((k, v)) = kv else {
@@ -1119,6 +1326,27 @@ impl HistoryView for SledStore {
                 amount: f64::from_le_bytes(v[8..16].try_into().unwrap_or_default()),
             });
         }
+    }
+}
+
+impl HistoryView for SledStore {
+    fn for_each_event(&self, entity: &str, from: i64, to: i64, f: &mut dyn FnMut(&HistoryEvent)) {
+        let cache = &self.history_cache;
+        if !cache.enabled() {
+            return self.scan_events(entity, from, to, f);
+        }
+        if cache.visit(entity, from, to, f) {
+            return;
+        }
+        // Not cached: read every event of the entity once, answer from it, keep it.
+        let epoch = cache.epoch.load(Ordering::SeqCst);
+        let mut all = Vec::new();
+        self.scan_events(entity, i64::MIN, i64::MAX, &mut |e| all.push(*e));
+        let start = all.partition_point(|e| e.at < from);
+        for e in all[start..].iter().take_while(|e| e.at < to) {
+            f(e);
+        }
+        cache.fill(entity, all, epoch);
     }
 }
 

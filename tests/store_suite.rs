@@ -418,3 +418,73 @@ suite!(
     locks_serialise_shared_keys,
     linked_claims_by_party,
 );
+
+/// The sled store's in-memory entity histories answer exactly as its index does, through
+/// revisions that move a claim's events, purges, and a budget so small that entries are
+/// dropped all the time. Three stores get the same writes: no cache, a tiny cache, the
+/// default cache; every decision's features agree, and so do features of claims never stored
+/// against the history built in memory from the surviving claims (the store-free oracle).
+#[test]
+fn sled_history_cache_answers_like_the_index() {
+    let open = |name: &str, cache: u64| {
+        let s = weir::store::SledStore::open(&tempdir(name).join("store"), 8 << 20, cache).unwrap();
+        service_on(Store::from_backend(Arc::new(s)))
+    };
+    let stores = [
+        open("cache-off", 0),
+        open("cache-tiny", 16 << 10),
+        open("cache-default", weir::store::DEFAULT_HISTORY_CACHE_BYTES),
+    ];
+    let claims = weir::demo_data::generate(900, 8);
+    let (stored, probes) = claims.split_at(700);
+    let mut latest: BTreeMap<String, weir::claim::Claim> = BTreeMap::new();
+    let step = |c: &weir::claim::Claim, latest: &mut BTreeMap<String, weir::claim::Claim>| {
+        let feats: Vec<Vec<f64>> = stores
+            .iter()
+            .map(|svc| {
+                let (rec, _) = svc.decide(c.clone(), now()).unwrap();
+                features::CATALOGUE
+                    .iter()
+                    .map(|f| rec.features[f.name])
+                    .collect()
+            })
+            .collect();
+        assert_eq!(feats[0], feats[1], "tiny cache, claim {}", c.claim_id);
+        assert_eq!(feats[0], feats[2], "default cache, claim {}", c.claim_id);
+        latest.insert(c.claim_id.clone(), c.clone());
+    };
+    for (i, d) in stored.iter().enumerate() {
+        step(&d.claim, &mut latest);
+        if i % 7 == 3 {
+            // A revision naming another repairer and amount: its old events must leave.
+            let mut r = d.claim.clone();
+            r.claimed_amount += 10.0;
+            for p in &mut r.parties {
+                p.id = format!("{}-rev", p.id);
+            }
+            step(&r, &mut latest);
+        }
+        if i % 11 == 5 {
+            let gone = &stored[i / 2].claim.claim_id;
+            if latest.remove(gone).is_some() {
+                for svc in &stores {
+                    assert!(
+                        svc.store.purge_claim(gone).unwrap().is_some(),
+                        "purge {gone}"
+                    );
+                }
+            }
+        }
+    }
+    let mut reference = MemoryHistory::new();
+    for c in latest.values() {
+        reference.record(c);
+    }
+    for d in probes {
+        let want = features::compute(&d.claim, &reference);
+        for svc in &stores {
+            let got = features::compute(&d.claim, &*svc.store.history_view(&d.claim).unwrap());
+            assert_eq!(got.to_vec(), want.to_vec(), "probe {}", d.claim.claim_id);
+        }
+    }
+}

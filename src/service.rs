@@ -644,9 +644,12 @@ pub struct DriftReport {
 }
 
 impl Service {
-    /// Every decided claim with its outcome, as monitoring sees it.
-    pub fn observations(&self) -> Result<Vec<crate::monitor::quality::Observation>, ServiceError> {
-        let mut out = Vec::new();
+    /// Every decided claim with its outcome, as monitoring sees it, one at a time (the store
+    /// is streamed: nothing is collected).
+    pub fn for_each_observation(
+        &self,
+        f: &mut dyn FnMut(&crate::monitor::quality::Observation),
+    ) -> Result<(), ServiceError> {
         let segs = &self.monitor.segments;
         self.store.for_each_latest(&mut |rec, outcome| {
             let mut segments = std::collections::BTreeMap::new();
@@ -659,7 +662,7 @@ impl Service {
                 };
                 segments.insert(s.clone(), v);
             }
-            out.push(crate::monitor::quality::Observation {
+            f(&crate::monitor::quality::Observation {
                 decided_at: DateTime::parse_from_rfc3339(&rec.decided_at)
                     .map(|t| t.with_timezone(&Utc))
                     .unwrap_or_default(),
@@ -670,7 +673,7 @@ impl Service {
                 segments,
             });
         })?;
-        Ok(out)
+        Ok(())
     }
 
     /// Drift of the champion's features and scores over claims decided in the last
@@ -746,25 +749,37 @@ impl Service {
         from: Option<DateTime<Utc>>,
         to: Option<DateTime<Utc>>,
     ) -> Result<crate::monitor::quality::QualityReport, ServiceError> {
-        let q = crate::monitor::quality::quality(&self.observations()?, from, to);
+        let mut tally = crate::monitor::quality::QualityTally::new(from, to);
+        self.for_each_observation(&mut |o| tally.add(o))?;
+        let q = tally.finish();
         if from.is_none() && to.is_none() {
-            let g = &self.metrics.precision;
-            g.with_label_values(&["estimate"])
-                .set(q.precision.precision.unwrap_or(f64::NAN));
-            g.with_label_values(&["wilson_low"])
-                .set(q.precision.interval.map_or(f64::NAN, |i| i.0));
-            g.with_label_values(&["wilson_high"])
-                .set(q.precision.interval.map_or(f64::NAN, |i| i.1));
-            self.metrics
-                .awaiting_outcome
-                .set(q.share_awaiting_outcome.unwrap_or(f64::NAN));
+            self.set_quality_gauges(&q);
         }
         Ok(q)
     }
 
+    fn set_quality_gauges(&self, q: &crate::monitor::quality::QualityReport) {
+        let g = &self.metrics.precision;
+        g.with_label_values(&["estimate"])
+            .set(q.precision.precision.unwrap_or(f64::NAN));
+        g.with_label_values(&["wilson_low"])
+            .set(q.precision.interval.map_or(f64::NAN, |i| i.0));
+        g.with_label_values(&["wilson_high"])
+            .set(q.precision.interval.map_or(f64::NAN, |i| i.1));
+        self.metrics
+            .awaiting_outcome
+            .set(q.share_awaiting_outcome.unwrap_or(f64::NAN));
+    }
+
     pub fn fairness(&self) -> Result<Vec<crate::monitor::quality::SegmentRow>, ServiceError> {
-        let rows =
-            crate::monitor::quality::fairness(&self.observations()?, self.monitor.fairness_bound);
+        let mut tally = crate::monitor::quality::FairnessTally::default();
+        self.for_each_observation(&mut |o| tally.add(o))?;
+        let rows = tally.finish(self.monitor.fairness_bound);
+        self.set_fairness_gauges(&rows);
+        Ok(rows)
+    }
+
+    fn set_fairness_gauges(&self, rows: &[crate::monitor::quality::SegmentRow]) {
         // Only segments with fixed value sets become metric labels; regions are free text.
         for r in rows.iter().filter(|r| r.segment != "region") {
             self.metrics
@@ -772,14 +787,20 @@ impl Service {
                 .with_label_values(&[r.segment.as_str(), r.value.as_str()])
                 .set(r.ratio_to_highest);
         }
-        Ok(rows)
     }
 
-    /// Recompute the monitoring gauges (called periodically by the server).
+    /// Recompute the monitoring gauges (called periodically by the server): drift over its
+    /// window, then quality and fairness together in one pass over the store.
     pub fn refresh_monitoring(&self, now: DateTime<Utc>) -> Result<(), ServiceError> {
         self.drift(now)?;
-        self.quality(None, None)?;
-        self.fairness()?;
+        let mut quality = crate::monitor::quality::QualityTally::new(None, None);
+        let mut fairness = crate::monitor::quality::FairnessTally::default();
+        self.for_each_observation(&mut |o| {
+            quality.add(o);
+            fairness.add(o);
+        })?;
+        self.set_quality_gauges(&quality.finish());
+        self.set_fairness_gauges(&fairness.finish(self.monitor.fairness_bound));
         Ok(())
     }
 }

@@ -786,6 +786,24 @@ async fn confusion_counts_by_week_match_an_independent_count() {
         q.totals.total(),
         "the withdrawn claim leaves the labelled counts"
     );
+    // The background refresh (one streamed pass for quality and fairness together) sets the
+    // same figures as the read-outs.
+    let estimate = svc.metrics.precision.with_label_values(&["estimate"]);
+    estimate.set(-1.0);
+    svc.refresh_monitoring(chrono::Utc::now()).unwrap();
+    assert_eq!(Some(estimate.get()), q2.precision.precision);
+    for r in svc
+        .fairness()
+        .unwrap()
+        .iter()
+        .filter(|r| r.segment == "line")
+    {
+        let g = svc
+            .metrics
+            .referral_rate_ratio
+            .with_label_values(&[r.segment.as_str(), r.value.as_str()]);
+        assert_eq!(g.get(), r.ratio_to_highest, "{} {}", r.segment, r.value);
+    }
 
     // The HTML report is well-formed XML with all five charts, each titled for screen readers.
     let html = weir::report::render(&svc.report_data(chrono::Utc::now(), 7.5).unwrap());

@@ -122,25 +122,61 @@ pub fn quality(
     from: Option<DateTime<Utc>>,
     to: Option<DateTime<Utc>>,
 ) -> QualityReport {
-    let mut groups: BTreeMap<(String, Queue, String, String), GroupRow> = BTreeMap::new();
-    let mut totals = Confusion::default();
-    let (mut referred_n, mut awaiting, mut unreferred_n) = (0u64, 0u64, 0u64);
-    let (mut audit_n, mut audit_pos) = (0u64, 0u64);
-    for o in obs
-        .iter()
-        .filter(|o| from.is_none_or(|f| o.decided_at >= f) && to.is_none_or(|t| o.decided_at < t))
-    {
+    let mut t = QualityTally::new(from, to);
+    for o in obs {
+        t.add(o);
+    }
+    t.finish()
+}
+
+/// [`quality`] one observation at a time: the store is read once, in a stream, and nothing
+/// but the counts is kept (a store of millions of claims is never held in memory).
+#[derive(Debug, Clone)]
+pub struct QualityTally {
+    from: Option<DateTime<Utc>>,
+    to: Option<DateTime<Utc>>,
+    groups: BTreeMap<(String, Queue, String, String), GroupRow>,
+    totals: Confusion,
+    referred_n: u64,
+    awaiting: u64,
+    unreferred_n: u64,
+    audit_n: u64,
+    audit_pos: u64,
+}
+
+impl QualityTally {
+    pub fn new(from: Option<DateTime<Utc>>, to: Option<DateTime<Utc>>) -> QualityTally {
+        QualityTally {
+            from,
+            to,
+            groups: BTreeMap::new(),
+            totals: Confusion::default(),
+            referred_n: 0,
+            awaiting: 0,
+            unreferred_n: 0,
+            audit_n: 0,
+            audit_pos: 0,
+        }
+    }
+
+    pub fn add(&mut self, o: &Observation) {
+        if !(self.from.is_none_or(|f| o.decided_at >= f)
+            && self.to.is_none_or(|t| o.decided_at < t))
+        {
+            return;
+        }
+        let week = iso_week(o.decided_at);
         let key = (
-            iso_week(o.decided_at),
+            week,
             o.queue,
             o.model_version.clone(),
             o.rules_version.clone(),
         );
-        let row = groups.entry(key.clone()).or_insert_with(|| GroupRow {
-            week: key.0,
+        let row = self.groups.entry(key).or_insert_with_key(|key| GroupRow {
+            week: key.0.clone(),
             queue: key.1,
-            model_version: key.2,
-            rules_version: key.3,
+            model_version: key.2.clone(),
+            rules_version: key.3.clone(),
             decided: 0,
             labelled: 0,
             unlabelled_outcomes: 0,
@@ -150,16 +186,16 @@ pub fn quality(
         row.decided += 1;
         let r = referred(o.queue);
         if r {
-            referred_n += 1;
+            self.referred_n += 1;
         } else {
-            unreferred_n += 1;
+            self.unreferred_n += 1;
         }
         match o.outcome.map(Outcome::label) {
             None => {
                 if o.queue != Queue::NoReview {
                     row.awaiting_outcome += 1;
                     if r {
-                        awaiting += 1;
+                        self.awaiting += 1;
                     }
                 }
             }
@@ -167,79 +203,93 @@ pub fn quality(
             Some(Some(y)) => {
                 row.labelled += 1;
                 let c = Confusion::from_decisions([r], &[y]);
-                for t in [&mut row.confusion, &mut totals] {
+                for t in [&mut row.confusion, &mut self.totals] {
                     t.tp += c.tp;
                     t.fp += c.fp;
                     t.tn += c.tn;
                     t.fn_ += c.fn_;
                 }
                 if o.queue == Queue::Audit {
-                    audit_n += 1;
-                    audit_pos += u64::from(y);
+                    self.audit_n += 1;
+                    self.audit_pos += u64::from(y);
                 }
             }
         }
     }
-    let referred_labelled = totals.tp + totals.fp;
-    let precision = Precision {
-        referred_labelled,
-        true_positives: totals.tp,
-        precision: totals.precision(),
-        interval: wilson(totals.tp, referred_labelled, Z95),
-    };
-    let sufficient = audit_n >= MIN_AUDIT_SAMPLE && referred_labelled > 0;
-    let rate = (audit_n > 0).then(|| audit_pos as f64 / audit_n as f64);
-    // Expected counts over every decided claim in the window.
-    let recall_at = |p: f64, r: f64| {
-        let tp = p * referred_n as f64;
-        let fn_ = r * unreferred_n as f64;
-        (tp + fn_ > 0.0).then(|| tp / (tp + fn_))
-    };
-    let (recall, specificity) = match (sufficient, rate, totals.precision()) {
-        (true, Some(r), Some(p)) => {
-            let fp = (1.0 - p) * referred_n as f64;
-            let tn = (1.0 - r) * unreferred_n as f64;
-            (recall_at(p, r), (tn + fp > 0.0).then(|| tn / (tn + fp)))
-        }
-        _ => (None, None),
-    };
-    let recall_interval = match (
-        sufficient,
-        wilson(audit_pos, audit_n, Z95),
-        totals.precision(),
-    ) {
-        (true, Some((r_lo, r_hi)), Some(p)) => recall_at(p, r_hi).zip(recall_at(p, r_lo)),
-        _ => None,
-    };
-    let note = if sufficient {
-        format!(
-            "recall and specificity estimated from {audit_n} labelled audit claims (a random sample of unreferred claims) and the precision of referrals"
-        )
-    } else {
-        format!(
-            "the audit sample holds {audit_n} labelled claims; at least {MIN_AUDIT_SAMPLE} are needed before recall and specificity say anything"
-        )
-    };
-    QualityReport {
-        from: from.map(|f| f.to_rfc3339()),
-        to: to.map(|t| t.to_rfc3339()),
-        groups: groups.into_values().collect(),
-        totals,
-        precision,
-        referred: referred_n,
-        referred_awaiting_outcome: awaiting,
-        share_awaiting_outcome: (referred_n > 0).then(|| awaiting as f64 / referred_n as f64),
-        audit: AuditEstimate {
-            audited_labelled: audit_n,
-            audited_positive: audit_pos,
-            unreferred_positive_rate: rate,
-            unreferred_positive_interval: wilson(audit_pos, audit_n, Z95),
-            recall: if sufficient { recall } else { None },
-            recall_interval,
-            specificity: if sufficient { specificity } else { None },
+
+    pub fn finish(self) -> QualityReport {
+        let QualityTally {
+            from,
+            to,
+            groups,
+            totals,
+            referred_n,
+            awaiting,
+            unreferred_n,
+            audit_n,
+            audit_pos,
+        } = self;
+        let referred_labelled = totals.tp + totals.fp;
+        let precision = Precision {
+            referred_labelled,
+            true_positives: totals.tp,
+            precision: totals.precision(),
+            interval: wilson(totals.tp, referred_labelled, Z95),
+        };
+        let sufficient = audit_n >= MIN_AUDIT_SAMPLE && referred_labelled > 0;
+        let rate = (audit_n > 0).then(|| audit_pos as f64 / audit_n as f64);
+        // Expected counts over every decided claim in the window.
+        let recall_at = |p: f64, r: f64| {
+            let tp = p * referred_n as f64;
+            let fn_ = r * unreferred_n as f64;
+            (tp + fn_ > 0.0).then(|| tp / (tp + fn_))
+        };
+        let (recall, specificity) = match (sufficient, rate, totals.precision()) {
+            (true, Some(r), Some(p)) => {
+                let fp = (1.0 - p) * referred_n as f64;
+                let tn = (1.0 - r) * unreferred_n as f64;
+                (recall_at(p, r), (tn + fp > 0.0).then(|| tn / (tn + fp)))
+            }
+            _ => (None, None),
+        };
+        let recall_interval = match (
             sufficient,
-            note,
-        },
+            wilson(audit_pos, audit_n, Z95),
+            totals.precision(),
+        ) {
+            (true, Some((r_lo, r_hi)), Some(p)) => recall_at(p, r_hi).zip(recall_at(p, r_lo)),
+            _ => None,
+        };
+        let note = if sufficient {
+            format!(
+                "recall and specificity estimated from {audit_n} labelled audit claims (a random sample of unreferred claims) and the precision of referrals"
+            )
+        } else {
+            format!(
+                "the audit sample holds {audit_n} labelled claims; at least {MIN_AUDIT_SAMPLE} are needed before recall and specificity say anything"
+            )
+        };
+        QualityReport {
+            from: from.map(|f| f.to_rfc3339()),
+            to: to.map(|t| t.to_rfc3339()),
+            groups: groups.into_values().collect(),
+            totals,
+            precision,
+            referred: referred_n,
+            referred_awaiting_outcome: awaiting,
+            share_awaiting_outcome: (referred_n > 0).then(|| awaiting as f64 / referred_n as f64),
+            audit: AuditEstimate {
+                audited_labelled: audit_n,
+                audited_positive: audit_pos,
+                unreferred_positive_rate: rate,
+                unreferred_positive_interval: wilson(audit_pos, audit_n, Z95),
+                recall: if sufficient { recall } else { None },
+                recall_interval,
+                specificity: if sufficient { specificity } else { None },
+                sufficient,
+                note,
+            },
+        }
     }
 }
 
@@ -261,14 +311,34 @@ pub struct SegmentRow {
 /// Selection Procedures (29 CFR 1607.4(D)), imported here as a convention for spotting uneven
 /// referral rates; it is not a legal test for insurance.
 pub fn fairness(obs: &[Observation], bound: f64) -> Vec<SegmentRow> {
-    let mut counts: BTreeMap<(String, String), (u64, u64)> = BTreeMap::new();
+    let mut t = FairnessTally::default();
     for o in obs {
+        t.add(o);
+    }
+    t.finish(bound)
+}
+
+/// [`fairness`] one observation at a time (counts per segment value only).
+#[derive(Debug, Clone, Default)]
+pub struct FairnessTally {
+    counts: BTreeMap<(String, String), (u64, u64)>,
+}
+
+impl FairnessTally {
+    pub fn add(&mut self, o: &Observation) {
         for (seg, val) in &o.segments {
-            let c = counts.entry((seg.clone(), val.clone())).or_default();
+            let c = self.counts.entry((seg.clone(), val.clone())).or_default();
             c.0 += 1;
             c.1 += u64::from(referred(o.queue));
         }
     }
+
+    pub fn finish(self, bound: f64) -> Vec<SegmentRow> {
+        fairness_rows(self.counts, bound)
+    }
+}
+
+fn fairness_rows(counts: BTreeMap<(String, String), (u64, u64)>, bound: f64) -> Vec<SegmentRow> {
     let mut highest: BTreeMap<String, f64> = BTreeMap::new();
     for ((seg, _), (n, r)) in &counts {
         let rate = *r as f64 / *n as f64;

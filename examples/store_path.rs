@@ -4,8 +4,11 @@
 //! measures minus the HTTP stack and the group-commit waits, so the store's own cost is seen
 //! alone (and can be profiled alone: `perf record -g target/release/examples/store_path`).
 //!
-//! `cargo run --release --example store_path -- CONFIG [CLAIMS]` (CONFIG as for `weir serve`;
-//! its store path must be an empty folder).
+//! `cargo run --release --example store_path -- CONFIG [CLAIMS] [--spread-days D]` (CONFIG as
+//! for `weir serve`; its store path should be an empty folder). With `--spread-days`, decision
+//! times are spread evenly over the D days before now, as a store filled over that time would
+//! hold them (monitoring windows then see a realistic share); it also fills a store for the
+//! resident-memory measurement of `weir serve` on millions of claims.
 
 use std::time::Instant;
 
@@ -14,7 +17,15 @@ fn main() -> anyhow::Result<()> {
     let config = args
         .get(1)
         .ok_or_else(|| anyhow::anyhow!("usage: store_path CONFIG [CLAIMS]"))?;
-    let n: usize = args.get(2).map_or(Ok(50_000), |s| s.parse())?;
+    let n: usize = args
+        .get(2)
+        .filter(|a| !a.starts_with("--"))
+        .map_or(Ok(50_000), |s| s.parse())?;
+    let spread_days: i64 = args
+        .iter()
+        .position(|a| a == "--spread-days")
+        .and_then(|i| args.get(i + 1))
+        .map_or(Ok(0), |s| s.parse())?;
     let config = weir::config::Config::load(Some(std::path::Path::new(config)))?;
     let store = weir::store::SledStore::open(
         &config.store.path,
@@ -35,10 +46,15 @@ fn main() -> anyhow::Result<()> {
         .map(|d| d.claim)
         .collect();
     let now = chrono::Utc::now();
+    let span_ms = spread_days * 86_400_000;
     let t = Instant::now();
     let mut queued = 0usize;
-    for c in claims {
-        let (rec, _) = svc.decide(c, now)?;
+    for (i, c) in claims.into_iter().enumerate() {
+        let back = span_ms - span_ms * i as i64 / n.max(1) as i64;
+        let (rec, _) = svc.decide(c, now - chrono::Duration::milliseconds(back))?;
+        if (i + 1) % 500_000 == 0 {
+            eprintln!("{} claims, {:.0} s", i + 1, t.elapsed().as_secs_f64());
+        }
         queued += usize::from(rec.queue != weir::rules::Queue::NoReview);
     }
     let decide = t.elapsed().as_secs_f64();

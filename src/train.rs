@@ -302,14 +302,44 @@ fn cross_validate(
     folds: &[(usize, usize)],
 ) -> Result<CvResult, TrainError> {
     let n = x.nrows();
-    let mut oof = vec![0.0; n];
-    let mut fold_auc = Vec::new();
-    for &(a, b) in folds {
+    let fit_fold = |&(a, b): &(usize, usize)| -> Result<Vec<f64>, TrainError> {
         let train_idx: Vec<usize> = (0..a).chain(b..n).collect();
         let xt = x.select(Axis(0), &train_idx);
         let yt: Vec<bool> = train_idx.iter().map(|&i| y[i]).collect();
         let fitted = Fitted::fit(c, xt.view(), &yt)?;
-        let m = fitted.margins(x.slice(ndarray::s![a..b, ..]));
+        Ok(fitted.margins(x.slice(ndarray::s![a..b, ..])))
+    };
+    // Folds are independent: fit them on every core (each fit is deterministic, and results
+    // are put back in fold order, so the outcome does not depend on the number of threads).
+    let workers = std::thread::available_parallelism()
+        .map_or(1, |w| w.get())
+        .clamp(1, folds.len().max(1));
+    let next = std::sync::atomic::AtomicUsize::new(0);
+    let mut done: Vec<(usize, Result<Vec<f64>, TrainError>)> = std::thread::scope(|s| {
+        let handles: Vec<_> = (0..workers)
+            .map(|_| {
+                s.spawn(|| {
+                    let mut out = Vec::new();
+                    loop {
+                        let i = next.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+                        let Some(f) = folds.get(i) else { break };
+                        out.push((i, fit_fold(f)));
+                    }
+                    out
+                })
+            })
+            .collect();
+        handles
+            .into_iter()
+            .flat_map(|h| h.join().unwrap_or_else(|p| std::panic::resume_unwind(p)))
+            .collect()
+    });
+    done.sort_by_key(|(i, _)| *i);
+    let mut oof = vec![0.0; n];
+    let mut fold_auc = Vec::new();
+    for (i, m) in done {
+        let (a, b) = folds[i];
+        let m = m?;
         if let Some(auc) = metrics::roc_auc(&m, &y[a..b]) {
             fold_auc.push(auc);
         }

@@ -333,8 +333,12 @@ const CACHE_ENTRY_OVERHEAD: usize = 96;
 
 /// Entity histories held in memory, write-through, so that a decision does not scan the
 /// history index (sled's range iterator copies the node it walks on every step, and a claim
-/// names about six entities). Each entity's list holds every event the index has for it,
-/// sorted by time, so any window is answered exactly as the index would answer it.
+/// names about six entities). Each cached entity holds every event the index has for it from
+/// a lower bound `from` on, sorted by time, so a window starting at or after `from` is
+/// answered exactly as the index would answer it; an earlier window is read from the index
+/// (and becomes the new bound). Decisions ask for the trailing year before each claim, so as
+/// time moves on the lists are cut to that year: memory follows the entities' recent activity,
+/// not the size of the store.
 ///
 /// Consistency: a decision reads and writes an entity's history under that entity's writer
 /// lock, and [`SledStore::record`] updates the cached lists after its transaction commits, so
@@ -350,11 +354,21 @@ struct HistoryCache {
     misses: AtomicU64,
 }
 
+/// One entity's cached events: all of them with `at >= from`.
+struct CachedHistory {
+    from: i64,
+    events: Vec<HistoryEvent>,
+}
+
 #[derive(Default)]
 struct CacheShard {
-    lists: std::collections::HashMap<Box<str>, Vec<HistoryEvent>, crate::features::FnvBuild>,
+    lists: std::collections::HashMap<Box<str>, CachedHistory, crate::features::FnvBuild>,
     bytes: usize,
 }
+
+/// A list is cut to its window once it holds this much older history (so that cutting,
+/// which moves the list, happens about once a month of claims, not on every claim).
+const CACHE_PRUNE_SLACK: i64 = 30 * crate::features::DAY;
 
 fn entry_bytes(key: &str, events: usize) -> usize {
     CACHE_ENTRY_OVERHEAD + key.len() + events * std::mem::size_of::<HistoryEvent>()
@@ -386,34 +400,53 @@ impl HistoryCache {
         self.shards[i].lock().unwrap_or_else(|p| p.into_inner())
     }
 
-    /// Call `f` for the cached events of `entity` in `[from, to)`; `false` when not cached.
+    /// Call `f` for the cached events of `entity` in `[from, to)`; `false` when the cache
+    /// does not cover `from` (nothing called).
     fn visit(&self, entity: &str, from: i64, to: i64, f: &mut dyn FnMut(&HistoryEvent)) -> bool {
-        let shard = self.shard(entity);
-        let Some(list) = shard.lists.get(entity) else {
+        let mut shard = self.shard(entity);
+        let Some(c) = shard.lists.get_mut(entity) else {
             self.misses.fetch_add(1, Ordering::Relaxed);
             return false;
         };
+        if c.from > from {
+            self.misses.fetch_add(1, Ordering::Relaxed);
+            return false;
+        }
         self.hits.fetch_add(1, Ordering::Relaxed);
-        let start = list.partition_point(|e| e.at < from);
-        for e in list[start..].iter().take_while(|e| e.at < to) {
+        let start = c.events.partition_point(|e| e.at < from);
+        for e in c.events[start..].iter().take_while(|e| e.at < to) {
             f(e);
+        }
+        if from.saturating_sub(c.from) > CACHE_PRUNE_SLACK {
+            c.events.drain(..start);
+            c.from = from;
+            shard.bytes = shard
+                .bytes
+                .saturating_sub(start * std::mem::size_of::<HistoryEvent>());
         }
         true
     }
 
-    /// Keep `events` (every event of `entity`, read from the index when the epoch was
-    /// `epoch`) unless a purge ran meanwhile.
-    fn fill(&self, entity: &str, mut events: Vec<HistoryEvent>, epoch: u64) {
+    /// Keep `events` (every event of `entity` from `from` on, read from the index when the
+    /// epoch was `epoch`) unless a purge ran meanwhile.
+    fn fill(&self, entity: &str, from: i64, mut events: Vec<HistoryEvent>, epoch: u64) {
         if events.len() > CACHE_MAX_EVENTS {
             return;
         }
         events.sort_by(event_order);
         let mut shard = self.shard(entity);
-        if self.epoch.load(Ordering::SeqCst) != epoch || shard.lists.contains_key(entity) {
+        if self.epoch.load(Ordering::SeqCst) != epoch {
             return;
         }
+        if let Some(old) = shard.lists.remove(entity) {
+            shard.bytes = shard
+                .bytes
+                .saturating_sub(entry_bytes(entity, old.events.len()));
+        }
         shard.bytes += entry_bytes(entity, events.len());
-        shard.lists.insert(entity.into(), events);
+        shard
+            .lists
+            .insert(entity.into(), CachedHistory { from, events });
         if shard.bytes > self.shard_budget {
             let keep = self.shard_budget / 2;
             let mut out = Vec::new();
@@ -422,7 +455,7 @@ impl HistoryCache {
                 if bytes <= keep {
                     break;
                 }
-                bytes -= entry_bytes(k, v.len());
+                bytes = bytes.saturating_sub(entry_bytes(k, v.events.len()));
                 out.push(k.clone());
             }
             for k in out {
@@ -433,14 +466,14 @@ impl HistoryCache {
     }
 
     /// Apply a committed write to the entities that are cached: `removed` events out,
-    /// `added` events in.
+    /// `added` events in (an event before a list's bound is not part of it).
     fn apply(&self, removed: &[(String, HistoryEvent)], added: &[(String, HistoryEvent)]) {
         for (entity, e) in removed {
             let mut shard = self.shard(entity);
-            if let Some(list) = shard.lists.get_mut(entity.as_str()) {
-                let before = list.len();
-                list.retain(|x| !(x.at == e.at && x.claim == e.claim));
-                let gone = before - list.len();
+            if let Some(c) = shard.lists.get_mut(entity.as_str()) {
+                let before = c.events.len();
+                c.events.retain(|x| !(x.at == e.at && x.claim == e.claim));
+                let gone = before - c.events.len();
                 shard.bytes = shard
                     .bytes
                     .saturating_sub(gone * std::mem::size_of::<HistoryEvent>());
@@ -448,20 +481,23 @@ impl HistoryCache {
         }
         for (entity, e) in added {
             let mut shard = self.shard(entity);
-            let too_long = match shard.lists.get_mut(entity.as_str()) {
-                Some(list) => {
-                    // The index has one entry per (entity, time, claim): replace, never double.
-                    match list.binary_search_by(|x| event_order(x, e)) {
-                        Ok(i) => list[i] = *e,
-                        Err(i) => list.insert(i, *e),
-                    }
-                    list.len() > CACHE_MAX_EVENTS
-                }
-                None => continue,
+            let Some(c) = shard.lists.get_mut(entity.as_str()) else {
+                continue;
             };
+            if e.at < c.from {
+                continue;
+            }
+            // The index has one entry per (entity, time, claim): replace, never double.
+            match c.events.binary_search_by(|x| event_order(x, e)) {
+                Ok(i) => c.events[i] = *e,
+                Err(i) => c.events.insert(i, *e),
+            }
+            let too_long = c.events.len() > CACHE_MAX_EVENTS;
             shard.bytes += std::mem::size_of::<HistoryEvent>();
-            if too_long && let Some(list) = shard.lists.remove(entity.as_str()) {
-                shard.bytes = shard.bytes.saturating_sub(entry_bytes(entity, list.len()));
+            if too_long && let Some(c) = shard.lists.remove(entity.as_str()) {
+                shard.bytes = shard
+                    .bytes
+                    .saturating_sub(entry_bytes(entity, c.events.len()));
             }
         }
     }
@@ -471,8 +507,10 @@ impl HistoryCache {
         self.epoch.fetch_add(1, Ordering::SeqCst);
         for (entity, _) in entities {
             let mut shard = self.shard(entity);
-            if let Some(list) = shard.lists.remove(entity.as_str()) {
-                shard.bytes = shard.bytes.saturating_sub(entry_bytes(entity, list.len()));
+            if let Some(c) = shard.lists.remove(entity.as_str()) {
+                shard.bytes = shard
+                    .bytes
+                    .saturating_sub(entry_bytes(entity, c.events.len()));
             }
         }
     }
@@ -1338,15 +1376,15 @@ impl HistoryView for SledStore {
         if cache.visit(entity, from, to, f) {
             return;
         }
-        // Not cached: read every event of the entity once, answer from it, keep it.
+        // Not cached from `from` on: read the entity's events from `from` on once, answer
+        // from them, keep them.
         let epoch = cache.epoch.load(Ordering::SeqCst);
         let mut all = Vec::new();
-        self.scan_events(entity, i64::MIN, i64::MAX, &mut |e| all.push(*e));
-        let start = all.partition_point(|e| e.at < from);
-        for e in all[start..].iter().take_while(|e| e.at < to) {
+        self.scan_events(entity, from, i64::MAX, &mut |e| all.push(*e));
+        for e in all.iter().take_while(|e| e.at < to) {
             f(e);
         }
-        cache.fill(entity, all, epoch);
+        cache.fill(entity, from, all, epoch);
     }
 }
 

@@ -435,7 +435,16 @@ fn sled_history_cache_answers_like_the_index() {
         open("cache-tiny", 16 << 10),
         open("cache-default", weir::store::DEFAULT_HISTORY_CACHE_BYTES),
     ];
-    let claims = weir::demo_data::generate(900, 8);
+    // Spread over about two and a half years (claim i moved i days on), so that the trailing
+    // year of the latest claims leaves out history the earliest claims' year holds.
+    let mut claims = weir::demo_data::generate(900, 8);
+    for (i, d) in claims.iter_mut().enumerate() {
+        let days = chrono::Days::new(i as u64);
+        let c = &mut d.claim;
+        c.reported_at += chrono::Duration::days(i as i64);
+        c.loss_date = c.loss_date + days;
+        c.policy_start = c.policy_start + days;
+    }
     let (stored, probes) = claims.split_at(700);
     let mut latest: BTreeMap<String, weir::claim::Claim> = BTreeMap::new();
     let step = |c: &weir::claim::Claim, latest: &mut BTreeMap<String, weir::claim::Claim>| {
@@ -480,11 +489,19 @@ fn sled_history_cache_answers_like_the_index() {
     for c in latest.values() {
         reference.record(c);
     }
-    for d in probes {
-        let want = features::compute(&d.claim, &reference);
+    // New claims after the stored ones, then the stored claims again from the latest back to
+    // the earliest: windows before the cached lists' bounds (which moved on as time passed)
+    // must be read from the index, not answered from a list that no longer holds them.
+    for c in probes
+        .iter()
+        .map(|d| &d.claim)
+        .chain(latest.values().rev())
+        .chain(latest.values())
+    {
+        let want = features::compute(c, &reference);
         for svc in &stores {
-            let got = features::compute(&d.claim, &*svc.store.history_view(&d.claim).unwrap());
-            assert_eq!(got.to_vec(), want.to_vec(), "probe {}", d.claim.claim_id);
+            let got = features::compute(c, &*svc.store.history_view(c).unwrap());
+            assert_eq!(got.to_vec(), want.to_vec(), "probe {}", c.claim_id);
         }
     }
 }

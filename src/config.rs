@@ -152,8 +152,9 @@ pub struct StoreConfig {
     pub path: std::path::PathBuf,
     /// sled page cache, in MiB.
     pub cache_mb: u64,
-    /// Entity histories kept in memory by the sled store (write-through; least recently
-    /// loaded first out), in MiB. Spares the history range scans that dominate a decision.
+    /// Entity histories kept in memory by the sled store (write-through; over budget, entries
+    /// are dropped in arbitrary order), in MiB. Spares the history range scans that dominated
+    /// a decision.
     pub history_cache_mb: u64,
     /// Least time between two disk flushes of the sled store, in microseconds: an
     /// acknowledgement waits up to this much longer and one flush covers every write made

@@ -344,8 +344,10 @@ const CACHE_ENTRY_OVERHEAD: usize = 96;
 /// lock, and [`SledStore::record`] updates the cached lists after its transaction commits, so
 /// a cached list never misses a write. A purge does not take entity locks: it bumps `epoch`
 /// and then drops the claim's entities from the cache, and a list loaded from the index while
-/// a purge ran (its `epoch` changed) is not kept. When a shard is over its share of the budget
-/// it drops entries in map order (arbitrary, so roughly random) until it is at half.
+/// a purge ran (its `epoch` changed) is not kept. A revision may remove events of entities its
+/// writer holds no lock on (an address the new version no longer names), so it bumps `epoch`
+/// too. When a shard is over its share of the budget it drops entries in map order
+/// (arbitrary, so roughly random) until it is at half.
 struct HistoryCache {
     shards: Vec<std::sync::Mutex<CacheShard>>,
     shard_budget: usize,
@@ -447,27 +449,19 @@ impl HistoryCache {
         shard
             .lists
             .insert(entity.into(), CachedHistory { from, events });
-        if shard.bytes > self.shard_budget {
-            let keep = self.shard_budget / 2;
-            let mut out = Vec::new();
-            let mut bytes = shard.bytes;
-            for (k, v) in &shard.lists {
-                if bytes <= keep {
-                    break;
-                }
-                bytes = bytes.saturating_sub(entry_bytes(k, v.events.len()));
-                out.push(k.clone());
-            }
-            for k in out {
-                shard.lists.remove(&k);
-            }
-            shard.bytes = bytes;
-        }
+        self.trim(&mut shard);
     }
 
     /// Apply a committed write to the entities that are cached: `removed` events out,
     /// `added` events in (an event before a list's bound is not part of it).
     fn apply(&self, removed: &[(String, HistoryEvent)], added: &[(String, HistoryEvent)]) {
+        if !removed.is_empty() {
+            // A revision removes events of entities its writer may not hold locks on (an
+            // address or party the new version no longer names): a list of such an entity
+            // being loaded from the index right now may hold the removed event, so it must
+            // not be kept, exactly as after a purge.
+            self.epoch.fetch_add(1, Ordering::SeqCst);
+        }
         for (entity, e) in removed {
             let mut shard = self.shard(entity);
             if let Some(c) = shard.lists.get_mut(entity.as_str()) {
@@ -488,18 +482,49 @@ impl HistoryCache {
                 continue;
             }
             // The index has one entry per (entity, time, claim): replace, never double.
-            match c.events.binary_search_by(|x| event_order(x, e)) {
-                Ok(i) => c.events[i] = *e,
-                Err(i) => c.events.insert(i, *e),
-            }
+            let grew = match c.events.binary_search_by(|x| event_order(x, e)) {
+                Ok(i) => {
+                    c.events[i] = *e;
+                    false
+                }
+                Err(i) => {
+                    c.events.insert(i, *e);
+                    true
+                }
+            };
             let too_long = c.events.len() > CACHE_MAX_EVENTS;
-            shard.bytes += std::mem::size_of::<HistoryEvent>();
+            if grew {
+                shard.bytes += std::mem::size_of::<HistoryEvent>();
+            }
             if too_long && let Some(c) = shard.lists.remove(entity.as_str()) {
                 shard.bytes = shard
                     .bytes
                     .saturating_sub(entry_bytes(entity, c.events.len()));
             }
+            self.trim(&mut shard);
         }
+    }
+
+    /// Over its share of the budget, a shard drops entries (in map order, so roughly at
+    /// random) until it is at half.
+    fn trim(&self, shard: &mut CacheShard) {
+        if shard.bytes <= self.shard_budget {
+            return;
+        }
+        let keep = self.shard_budget / 2;
+        let mut out = Vec::new();
+        let mut bytes = shard.bytes;
+        for (k, v) in &shard.lists {
+            if bytes <= keep {
+                break;
+            }
+            bytes = bytes.saturating_sub(entry_bytes(k, v.events.len()));
+            out.push(k.clone());
+        }
+        for k in out {
+            shard.lists.remove(&k);
+        }
+        shard.bytes = bytes;
     }
 
     /// Forget `entities` after a purge removed events from the index.
@@ -1334,7 +1359,15 @@ impl SledStore {
     }
 
     /// Events of `entity` in `[from, to)` read from the index itself.
-    fn scan_events(&self, entity: &str, from: i64, to: i64, f: &mut dyn FnMut(&HistoryEvent)) {
+    /// `false` when a read failed (the events given are then incomplete).
+    fn scan_events(
+        &self,
+        entity: &str,
+        from: i64,
+        to: i64,
+        f: &mut dyn FnMut(&HistoryEvent),
+    ) -> bool {
+        let mut complete = true;
         let start = history_key(entity, from, 0);
         let end = if to == i64::MAX {
             // Past every key of `entity` (ids hold no control characters).
@@ -1350,6 +1383,7 @@ impl SledStore {
                 // A read error cannot be reported through this trait; the caller's decision
                 // would be made on partial history, so log it loudly.
                 tracing::error!(entity, "history read failed");
+                complete = false;
                 continue;
             };
             if k.len() < plen + 16 || v.len() < 16 {
@@ -1364,6 +1398,7 @@ impl SledStore {
                 amount: f64::from_le_bytes(v[8..16].try_into().unwrap_or_default()),
             });
         }
+        complete
     }
 }
 
@@ -1371,7 +1406,8 @@ impl HistoryView for SledStore {
     fn for_each_event(&self, entity: &str, from: i64, to: i64, f: &mut dyn FnMut(&HistoryEvent)) {
         let cache = &self.history_cache;
         if !cache.enabled() {
-            return self.scan_events(entity, from, to, f);
+            self.scan_events(entity, from, to, f);
+            return;
         }
         if cache.visit(entity, from, to, f) {
             return;
@@ -1380,17 +1416,62 @@ impl HistoryView for SledStore {
         // from them, keep them.
         let epoch = cache.epoch.load(Ordering::SeqCst);
         let mut all = Vec::new();
-        self.scan_events(entity, from, i64::MAX, &mut |e| all.push(*e));
+        let complete = self.scan_events(entity, from, i64::MAX, &mut |e| all.push(*e));
         for e in all.iter().take_while(|e| e.at < to) {
             f(e);
         }
-        cache.fill(entity, from, all, epoch);
+        // A list a read error left incomplete answers this decision only, never later ones.
+        if complete {
+            cache.fill(entity, from, all, epoch);
+        }
     }
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    fn event(at: i64, claim: u64) -> HistoryEvent {
+        HistoryEvent {
+            at,
+            claim,
+            claimant: 7,
+            amount: 100.0,
+        }
+    }
+
+    /// The race a reviewer found: a revision removes an entity's event (the new version no
+    /// longer names that entity, so its writer holds no lock on it) while another decision
+    /// is loading that entity's list from the index. The loaded list may hold the removed
+    /// event, so it must not be kept.
+    #[test]
+    fn a_list_loaded_across_a_revision_is_not_kept() {
+        let c = HistoryCache::new(1 << 20);
+        let loading_since = c.epoch.load(Ordering::SeqCst);
+        c.apply(&[("address:A".to_string(), event(100, 1))], &[]);
+        c.fill("address:A", 0, vec![event(100, 1)], loading_since);
+        assert!(!c.visit("address:A", 0, 1_000, &mut |_| {}));
+        // Loaded after the revision: kept, and answers without the index.
+        c.fill("address:A", 0, vec![], c.epoch.load(Ordering::SeqCst));
+        let mut seen = 0;
+        assert!(c.visit("address:A", 0, 1_000, &mut |_| seen += 1));
+        assert_eq!(seen, 0);
+    }
+
+    #[test]
+    fn cache_bytes_follow_the_lists_and_stay_within_budget() {
+        let c = HistoryCache::new(CACHE_SHARDS as u64 * 4096);
+        c.fill("party:R", 0, vec![], c.epoch.load(Ordering::SeqCst));
+        // The same (time, claim) twice is one index row: replaced, not doubled.
+        c.apply(&[], &[("party:R".to_string(), event(5, 9))]);
+        c.apply(&[], &[("party:R".to_string(), event(5, 9))]);
+        assert_eq!(c.shard("party:R").bytes, entry_bytes("party:R", 1));
+        // Growing a cached list by writes alone never leaves the shard over its budget.
+        for i in 0..1_000 {
+            c.apply(&[], &[("party:R".to_string(), event(10 + i, i as u64))]);
+            assert!(c.shard("party:R").bytes <= c.shard_budget);
+        }
+    }
 
     #[test]
     fn rank_keys_sort_by_priority_descending() {

@@ -180,8 +180,8 @@ impl Default for StoreConfig {
             backend: StoreBackend::Sled,
             path: "data/weir.sled".into(),
             cache_mb: 128,
-            history_cache_mb: 32,
-            group_commit_us: 1_000,
+            history_cache_mb: crate::store::DEFAULT_HISTORY_CACHE_BYTES >> 20,
+            group_commit_us: crate::store::DEFAULT_GROUP_COMMIT_US,
             postgres_url: "host=127.0.0.1 user=weir dbname=weir".into(),
             postgres_pool: 8,
         }

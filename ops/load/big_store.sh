@@ -29,25 +29,8 @@ trap cleanup EXIT
 
 cargo build --release --quiet --bin weir --example store_path
 WEIR=target/release/weir
-if [ ! -f "$WORK/model.json" ]; then
-  $WEIR demo-data --out "$WORK/data" --claims 20000 --seed 1 >/dev/null
-  printf '[training.trees]\nenabled = false\n' > "$WORK/train.toml"
-  $WEIR train --data "$WORK/data/claims.ndjson" --out "$WORK/model.json" --config "$WORK/train.toml" >/dev/null
-  $WEIR keys add --file "$WORK/keys.toml" --name load-intake --role claims_system 2>/dev/null > "$WORK/key"
-fi
-cat > "$WORK/weir.toml" <<EOF
-[server]
-listen = "127.0.0.1:$PORT"
-concurrency_limit = 4096
-[store]
-path = "$WORK/store"
-cache_mb = ${CACHE_MB:-128}
-[paths]
-model = "$WORK/model.json"
-rules = "$(pwd)/config/rules.toml"
-[access]
-key_file = "$WORK/keys.toml"
-EOF
+source ops/load/setup.sh
+load_setup "$WORK" "$PORT" "cache_mb = ${CACHE_MB:-128}"
 if [ ! -f "$WORK/filled-$N" ]; then
   rm -rf "$WORK/store"
   echo "filling $WORK/store with $N claims..."

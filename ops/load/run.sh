@@ -35,26 +35,10 @@ trap cleanup EXIT
 cargo build --release --quiet --bin weir --example bare_axum
 WEIR=target/release/weir
 
-# A logistic-regression model trained on the demo scenario (the Python reference service can
-# reproduce that one exactly).
-$WEIR demo-data --out "$WORK/data" --claims 20000 --seed 1 >/dev/null
-printf '[training.trees]\nenabled = false\n' > "$WORK/train.toml"
-$WEIR train --data "$WORK/data/claims.ndjson" --out "$WORK/model.json" --config "$WORK/train.toml" >/dev/null
-KEY=$($WEIR keys add --file "$WORK/keys.toml" --name load-intake --role claims_system 2>/dev/null)
-export LOAD_KEY=$KEY
-
-cat > "$WORK/weir.toml" <<EOF
-[server]
-listen = "127.0.0.1:$PORT"
-concurrency_limit = 4096
-[store]
-path = "$WORK/store"
-[paths]
-model = "$WORK/model.json"
-rules = "config/rules.toml"
-[access]
-key_file = "$WORK/keys.toml"
-EOF
+source "$LOAD_DIR/setup.sh"
+load_setup "$WORK" "$PORT"
+LOAD_KEY=$(cat "$WORK/key")
+export LOAD_KEY
 
 # CPU seconds (user + system) of a process, from /proc.
 cpu_seconds() {

@@ -182,6 +182,7 @@ fn training(c: &mut Criterion) {
                         iterations: 150,
                         learning_rate: 0.1,
                         max_depth: 4,
+                        min_leaf_weight: 1.0,
                         seed: 1,
                     },
                 )

@@ -119,6 +119,7 @@ fn main() -> anyhow::Result<()> {
             iterations: 150,
             learning_rate: 0.1,
             max_depth: 4,
+            min_leaf_weight: 1.0,
             seed: 1,
         },
     )?;

@@ -79,6 +79,9 @@ impl Role {
     }
 }
 
+/// Entity kind of a catastrophe event in history keys.
+pub const CATASTROPHE_KIND: &str = "catastrophe";
+
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Party {
     pub role: Role,
@@ -119,6 +122,11 @@ pub struct Claim {
     /// Opaque id of the loss or risk address, when the claims system supplies one.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub address_id: Option<String>,
+    /// The insurer's code of the catastrophe event (storm, flood, hail day) the claim was
+    /// filed under, when it has tagged one: many genuine claims then share a few contractors
+    /// within days, which is context, not suspicion.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub catastrophe_code: Option<String>,
     #[serde(default)]
     pub parties: Vec<Party>,
     pub circumstances: Circumstances,
@@ -308,6 +316,7 @@ impl Claim {
                 "currency",
                 "region",
                 "address_id",
+                "catastrophe_code",
                 "parties",
                 "circumstances",
             ],
@@ -381,6 +390,7 @@ impl Claim {
         });
         let region = w.optional_id(obj, "region");
         let address_id = w.optional_id(obj, "address_id");
+        let catastrophe_code = w.optional_id(obj, "catastrophe_code");
         let parties = w.parties(obj);
         let circumstances = w.circumstances(obj);
 
@@ -440,6 +450,7 @@ impl Claim {
                 currency,
                 region,
                 address_id,
+                catastrophe_code,
                 parties,
                 circumstances,
             }),
@@ -461,7 +472,8 @@ impl Claim {
         self.reported_at.timestamp()
     }
 
-    /// The ids this claim contributes to history, as `kind:id` keys.
+    /// The ids this claim contributes to history, as `kind:id` keys. A catastrophe event is
+    /// one of them (so features can tell a surge's claims apart), but it links no claims.
     pub fn entity_keys(&self) -> Vec<String> {
         let mut keys = vec![
             format!("claimant:{}", self.claimant_id),
@@ -469,6 +481,9 @@ impl Claim {
         ];
         if let Some(a) = &self.address_id {
             keys.push(format!("address:{a}"));
+        }
+        if let Some(c) = &self.catastrophe_code {
+            keys.push(format!("{CATASTROPHE_KIND}:{c}"));
         }
         for p in &self.parties {
             keys.push(format!("{}:{}", p.role.as_str(), p.id));

@@ -39,18 +39,25 @@ impl Default for Referral {
 #[serde(default, deny_unknown_fields)]
 pub struct Trees {
     pub enabled: bool,
-    pub iterations: usize,
-    pub learning_rate: f32,
-    pub max_depth: usize,
+    /// The grid of the bounded search: each list is one axis. `search` settings are drawn
+    /// from it without repetition (seeded), and each competes in cross-validation.
+    pub iterations: Vec<usize>,
+    pub learning_rate: Vec<f32>,
+    pub max_depth: Vec<usize>,
+    pub min_leaf_weight: Vec<f32>,
+    /// How many tree settings the search tries (at most the grid's size).
+    pub search: usize,
 }
 
 impl Default for Trees {
     fn default() -> Self {
         Trees {
             enabled: true,
-            iterations: 150,
-            learning_rate: 0.1,
-            max_depth: 4,
+            iterations: vec![100, 300],
+            learning_rate: vec![0.05, 0.1],
+            max_depth: vec![3, 5],
+            min_leaf_weight: vec![1.0, 10.0],
+            search: 4,
         }
     }
 }
@@ -73,6 +80,9 @@ pub struct Training {
     pub clusters: usize,
     pub seed: u64,
     pub trees: Trees,
+    /// Also try the mean of the best logistic and the best trees candidate's calibrated
+    /// probabilities; it competes like any candidate.
+    pub blend: bool,
 }
 
 impl Default for Training {
@@ -101,6 +111,7 @@ impl Default for Training {
             clusters: 8,
             seed: 20_251_202,
             trees: Trees::default(),
+            blend: true,
         }
     }
 }
@@ -477,11 +488,30 @@ impl Config {
         if t.clusters == 0 {
             p.push("training.clusters: must be at least 1".into());
         }
-        if t.trees.iterations == 0 || t.trees.max_depth == 0 {
-            p.push("training.trees: iterations and max_depth must be at least 1".into());
+        let tr = &t.trees;
+        if tr.iterations.is_empty() || tr.iterations.iter().any(|&v| v == 0 || v > 5000) {
+            p.push("training.trees.iterations: must be a non-empty list of 1 to 5000".into());
         }
-        if !(t.trees.learning_rate > 0.0 && t.trees.learning_rate <= 1.0) {
-            p.push("training.trees.learning_rate: must be in (0, 1]".into());
+        if tr.max_depth.is_empty() || tr.max_depth.iter().any(|&v| v == 0 || v > 12) {
+            p.push("training.trees.max_depth: must be a non-empty list of 1 to 12".into());
+        }
+        if tr.learning_rate.is_empty() || tr.learning_rate.iter().any(|&v| !(v > 0.0 && v <= 1.0)) {
+            p.push(
+                "training.trees.learning_rate: must be a non-empty list of values in (0, 1]".into(),
+            );
+        }
+        if tr.min_leaf_weight.is_empty()
+            || tr
+                .min_leaf_weight
+                .iter()
+                .any(|&v| !(v.is_finite() && v >= 0.0))
+        {
+            p.push(
+                "training.trees.min_leaf_weight: must be a non-empty list of numbers >= 0".into(),
+            );
+        }
+        if tr.enabled && tr.search == 0 {
+            p.push("training.trees.search: must be at least 1 when trees are enabled".into());
         }
         if let Err(missing) = crate::features::resolve(&t.features) {
             p.push(format!(

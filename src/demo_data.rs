@@ -192,6 +192,7 @@ impl Gen {
             currency: "EUR".into(),
             region: Some(REGIONS[p.region].to_string()),
             address_id: home_address.then(|| format!("H-{:06}", p.id)),
+            catastrophe_code: None,
             parties,
             circumstances,
         };

@@ -126,23 +126,41 @@ impl HistoryView for MemoryHistory {
     }
 }
 
-/// A feature's definition: its name, what it means, and how to say it to an investigator.
+/// Which side of a feature's range an investigator reads as a warning sign. A model reason is
+/// only given when the claim's value lies on that side of the training average, and far
+/// enough from it to be unusual: a positive contribution from the *absence* of a signal
+/// ("0 other claimants") is arithmetic, not a reason anyone can check.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Warning {
+    /// Higher values are the warning sign (counts, ratios, flags).
+    High,
+    /// Lower values are the warning sign (days from policy start, number of parties).
+    Low,
+    /// Never a reason on its own: the line of business, an absolute amount, a firm's sheer
+    /// volume. Such features still inform the model, and other reasons quote them.
+    Never,
+}
+
+/// A feature's definition: its name, what it means, which side warns, and how to say it to an
+/// investigator. The wording function sees the claim's whole feature vector, so a reason can
+/// give its comparison ("41 claimants in 30 days, usually 6").
 pub struct FeatureDef {
     pub name: &'static str,
     pub meaning: &'static str,
+    pub warning: Warning,
     /// Plain words for a claim whose value pushed its score up.
-    pub reason: fn(f64) -> String,
+    pub reason: fn(f64, &[f64]) -> String,
 }
 
 macro_rules! catalogue {
-    ($($idx:ident = $name:literal, $meaning:literal, $reason:expr;)*) => {
+    ($($idx:ident = $name:literal, $warn:ident, $meaning:literal, $reason:expr;)*) => {
         /// Indices into the full feature vector.
         #[allow(non_camel_case_types, clippy::upper_case_acronyms)]
         #[derive(Clone, Copy)]
         #[repr(usize)]
         enum F { $($idx,)* }
         pub const CATALOGUE: &[FeatureDef] = &[
-            $(FeatureDef { name: $name, meaning: $meaning, reason: $reason },)*
+            $(FeatureDef { name: $name, meaning: $meaning, warning: Warning::$warn, reason: $reason },)*
         ];
     };
 }
@@ -161,91 +179,126 @@ fn others(v: f64, noun: &str) -> String {
     }
 }
 
+/// An amount with thousands separators and no decimals: "4,335", "1,250,000".
+pub fn fmt_amount(x: f64) -> String {
+    let neg = x < 0.0;
+    let digits = format!("{:.0}", x.abs());
+    let mut out = String::with_capacity(digits.len() + digits.len() / 3 + 1);
+    for (i, ch) in digits.chars().enumerate() {
+        if i > 0 && (digits.len() - i) % 3 == 0 {
+            out.push(',');
+        }
+        out.push(ch);
+    }
+    if neg { format!("-{out}") } else { out }
+}
+
+fn amount_of(full: &[f64]) -> f64 {
+    full[F::LogAmount as usize].exp_m1()
+}
+
+/// A business party's usual number of other claimants in 30 days, from its burst ratio.
+fn usual_30d(burst: f64, recent: f64) -> String {
+    let usual = ((recent + 1.0) / burst.max(1e-9) - 1.0).max(0.0);
+    if usual < 10.0 {
+        format!("{usual:.1}")
+    } else {
+        format!("{usual:.0}")
+    }
+}
+
+fn burst_reason(kind: &str, v: f64, recent: f64) -> String {
+    format!(
+        "this {kind}: {} other claimants in the last 30 days, usually {}",
+        n(recent),
+        usual_30d(v, recent)
+    )
+}
+
 catalogue! {
-    AmountRatio = "amount_to_sum_insured", "claimed amount divided by sum insured",
-        |v| format!("claimed amount is {:.0}% of the sum insured", v * 100.0);
-    LogAmount = "log_claimed_amount", "natural log of 1 + claimed amount",
-        |v| format!("large claimed amount (about {:.0})", v.exp() - 1.0);
-    DaysPolicyToLoss = "days_policy_start_to_loss", "days from policy start to loss date (negative: loss before start)",
-        |v| if v < 0.0 { format!("loss dated {} days before the policy started", -n(v)) }
+    AmountRatio = "amount_to_sum_insured", High, "claimed amount divided by sum insured",
+        |v, _| format!("claimed amount is {:.0}% of the sum insured", v * 100.0);
+    LogAmount = "log_claimed_amount", Never, "natural log of 1 + claimed amount",
+        |v, _| format!("claimed amount {}", fmt_amount(v.exp_m1()));
+    DaysPolicyToLoss = "days_policy_start_to_loss", Low, "days from policy start to loss date (negative: loss before start)",
+        |v, _| if v < 0.0 { format!("loss dated {} days before the policy started", -n(v)) }
             else { format!("loss {} days after the policy started", n(v)) };
-    DaysLossToReport = "days_loss_to_report", "days from loss date to report",
-        |v| format!("reported {} days after the loss", n(v));
-    NightLoss = "night_loss", "1 if the loss time is between 22:00 and 05:59",
-        |_| "loss at night (22:00 to 06:00)".to_string();
-    LossTimeUnknown = "loss_time_unknown", "1 if no loss time was given",
-        |_| "no time of loss given".to_string();
-    NoPoliceReport = "no_police_report", "1 if no police report was made",
-        |_| "no police report".to_string();
-    Injury = "injury", "1 if an injury is claimed",
-        |_| "injury claimed".to_string();
-    TotalLoss = "total_loss", "1 if a total loss is claimed",
-        |_| "total loss claimed".to_string();
-    Theft = "theft", "1 if the loss is a theft",
-        |_| "theft".to_string();
-    LineHome = "line_home", "1 for home, 0 for motor",
-        |_| "home claim".to_string();
-    PartyCount = "party_count", "number of parties named on the claim",
-        |v| if n(v) == 1 { "only one party named on the claim".to_string() }
-            else { format!("{} parties named on the claim", n(v)) };
-    NewPolicyLoss = "loss_within_30_days_of_start", "1 if the loss is dated less than 30 days after the policy started (or before it)",
-        |_| "loss within 30 days of the policy starting".to_string();
-    LateReport = "reported_after_30_days", "1 if the claim was reported more than 30 days after the loss",
-        |_| "reported more than 30 days after the loss".to_string();
-    ClaimantShort = "claimant_claims_30d", "earlier claims by this claimant in 30 days",
-        |v| format!("claimant made {} in the last 30 days", others(v, "claim"));
-    ClaimantLong = "claimant_claims_365d", "earlier claims by this claimant in 365 days",
-        |v| format!("claimant made {} in the last year", others(v, "claim"));
-    ClaimantAmountLong = "claimant_log_amount_365d", "log of 1 + amount claimed by this claimant in 365 days",
-        |v| format!("claimant claimed about {:.0} in the last year", v.exp() - 1.0);
-    PolicyLong = "policy_claims_365d", "earlier claims on this policy in 365 days",
-        |v| format!("{} on this policy in the last year", others(v, "claim"));
-    RepairerShort = "repairer_claims_30d", "earlier claims naming this repairer in 30 days (highest over repairers)",
-        |v| format!("repairer named on {} in the last 30 days", others(v, "claim"));
-    RepairerClaimants = "repairer_claimants_365d", "distinct other claimants using this repairer in 365 days",
-        |v| format!("repairer shared with {} in the last year", others(v, "claimant"));
-    MedicalShort = "medical_provider_claims_30d", "earlier claims naming this medical provider in 30 days",
-        |v| format!("medical provider named on {} in the last 30 days", others(v, "claim"));
-    MedicalClaimants = "medical_provider_claimants_365d", "distinct other claimants of this medical provider in 365 days",
-        |v| format!("medical provider shared with {} in the last year", others(v, "claimant"));
-    AttorneyLong = "attorney_claims_365d", "earlier claims naming this attorney in 365 days",
-        |v| format!("attorney named on {} in the last year", others(v, "claim"));
-    AttorneyClaimants = "attorney_claimants_365d", "distinct other claimants of this attorney in 365 days",
-        |v| format!("attorney shared with {} in the last year", others(v, "claimant"));
-    PayeeLong = "payee_account_claims_365d", "earlier claims paying into this bank account in 365 days",
-        |v| format!("payee bank account used on {} in the last year", others(v, "claim"));
-    PayeeClaimants = "payee_account_claimants_365d", "distinct other claimants paid into this bank account in 365 days",
-        |v| format!("payee bank account shared with {} in the last year", others(v, "claimant"));
-    WitnessLong = "witness_claims_365d", "earlier claims naming this witness in 365 days",
-        |v| format!("witness appears on {} in the last year", others(v, "claim"));
-    AddressLong = "address_claims_365d", "earlier claims at this address in 365 days",
-        |v| format!("{} at this address in the last year", others(v, "claim"));
-    AddressClaimants = "address_claimants_365d", "distinct other claimants at this address in 365 days",
-        |v| format!("address shared with {} in the last year", others(v, "claimant"));
+    DaysLossToReport = "days_loss_to_report", High, "days from loss date to report",
+        |v, _| format!("reported {} days after the loss", n(v));
+    NightLoss = "night_loss", High, "1 if the loss time is between 22:00 and 05:59",
+        |_, _| "loss at night (22:00 to 06:00)".to_string();
+    LossTimeUnknown = "loss_time_unknown", High, "1 if no loss time was given",
+        |_, _| "no time of loss given".to_string();
+    NoPoliceReport = "no_police_report", High, "1 if no police report was made",
+        |_, _| "no police report".to_string();
+    Injury = "injury", High, "1 if an injury is claimed",
+        |_, _| "injury claimed".to_string();
+    TotalLoss = "total_loss", High, "1 if a total loss is claimed",
+        |_, _| "total loss claimed".to_string();
+    Theft = "theft", High, "1 if the loss is a theft",
+        |_, _| "theft".to_string();
+    LineHome = "line_home", Never, "1 for home, 0 for motor",
+        |_, _| "home claim".to_string();
+    PartyCount = "party_count", Low, "number of parties named on the claim",
+        |v, _| if n(v) <= 1 { "only one party named on the claim".to_string() }
+            else { format!("only {} parties named on the claim", n(v)) };
+    NewPolicyLoss = "loss_within_30_days_of_start", High, "1 if the loss is dated less than 30 days after the policy started (or before it)",
+        |_, _| "loss within 30 days of the policy starting".to_string();
+    LateReport = "reported_after_30_days", High, "1 if the claim was reported more than 30 days after the loss",
+        |_, _| "reported more than 30 days after the loss".to_string();
+    RoundAmount = "amount_round_figure", High, "1 if the claimed amount is at least 500 and a whole multiple of 100 (an estimate rather than an invoice)",
+        |_, f| format!("claimed amount is a round figure ({})", fmt_amount(amount_of(f)));
+    BelowRound = "amount_just_below_round_figure", High, "1 if the claimed amount lies within 2% below a round figure of 1,000 or more (1, 2, 2.5 or 5 times a power of ten), where authority limits and excesses tend to sit",
+        |_, f| {
+            let a = amount_of(f);
+            format!("claimed amount {} is just under {}", fmt_amount(a), fmt_amount(round_figure_above(a).unwrap_or(a)))
+        };
+    Catastrophe = "catastrophe_event", Never, "1 if the claim is tagged with a catastrophe event code",
+        |_, _| "filed under a catastrophe event".to_string();
+    ClaimantShort = "claimant_claims_30d", High, "earlier claims by this claimant in 30 days",
+        |v, _| format!("claimant made {} in the last 30 days", others(v, "claim"));
+    ClaimantLong = "claimant_claims_365d", High, "earlier claims by this claimant in 365 days",
+        |v, _| format!("claimant made {} in the last year", others(v, "claim"));
+    ClaimantAmountLong = "claimant_log_amount_365d", Never, "log of 1 + amount claimed by this claimant in 365 days",
+        |v, _| format!("claimant claimed {} in the last year", fmt_amount(v.exp_m1()));
+    PolicyLong = "policy_claims_365d", High, "earlier claims on this policy in 365 days",
+        |v, _| format!("{} on this policy in the last year", others(v, "claim"));
+    RepairerRecent = "repairer_claimants_30d", Never, "distinct other claimants naming this repairer in the last 30 days (highest over the claim's repairers)",
+        |v, _| format!("repairer named by {} in the last 30 days", others(v, "claimant"));
+    RepairerBurst = "repairer_burst", High, "repairer's other claimants in the last 30 days against its own usual 30 days over the year before ((recent + 1) / (usual + 1)); claims filed under the same catastrophe event are left out",
+        |v, f| burst_reason("repairer", v, f[F::RepairerRecent as usize]);
+    MedicalRecent = "medical_provider_claimants_30d", Never, "distinct other claimants naming this medical provider in the last 30 days",
+        |v, _| format!("medical provider named by {} in the last 30 days", others(v, "claimant"));
+    MedicalBurst = "medical_provider_burst", High, "medical provider's other claimants in the last 30 days against its own usual 30 days (as for repairers)",
+        |v, f| burst_reason("medical provider", v, f[F::MedicalRecent as usize]);
+    AttorneyRecent = "attorney_claimants_30d", Never, "distinct other claimants naming this attorney in the last 30 days",
+        |v, _| format!("attorney named by {} in the last 30 days", others(v, "claimant"));
+    AttorneyBurst = "attorney_burst", High, "attorney's other claimants in the last 30 days against its own usual 30 days (as for repairers)",
+        |v, f| burst_reason("attorney", v, f[F::AttorneyRecent as usize]);
+    PayeeClaimants = "payee_account_claimants_365d", High, "distinct other claimants paid into this bank account in 365 days",
+        |v, _| format!("payee bank account also used by {} in the last year", others(v, "claimant"));
+    WitnessClaimants = "witness_claimants_365d", High, "distinct other claimants naming this witness in 365 days",
+        |v, _| format!("witness also named by {} in the last year", others(v, "claimant"));
+    ThirdPartyClaimants = "third_party_claimants_365d", High, "distinct other claimants naming this third party in 365 days",
+        |v, _| format!("third party also involved with {} in the last year", others(v, "claimant"));
+    AddressClaimants = "address_claimants_365d", High, "distinct other claimants at this address in 365 days",
+        |v, _| format!("address shared with {} in the last year", others(v, "claimant"));
+    LinkedLong = "linked_claimants_365d", High, "distinct other claimants sharing a bank account, witness, third party or address with this claim in 365 days",
+        |v, _| format!("linked through a shared bank account, witness, third party or address to {} in the last year", others(v, "claimant"));
+    LinkedShort = "linked_claimants_30d", High, "as linked_claimants_365d, in the last 30 days",
+        |v, _| format!("linked through a shared bank account, witness, third party or address to {} in the last 30 days", others(v, "claimant"));
+    PairClaimants = "party_pair_claimants_365d", High, "distinct other claimants on claims naming two of this claim's parties together in 365 days (highest over pairs)",
+        |v, _| format!("two of this claim's parties appear together on claims of {} in the last year", others(v, "claimant"));
+    SimilarAmounts = "party_similar_amount_share", High, "share of a party's earlier claims in 365 days within 15% of this claimed amount (highest over parties with at least 3 earlier claims)",
+        |v, _| format!("{:.0}% of the earlier claims naming one of its parties this year were within 15% of this amount", v * 100.0);
+    AmountVsParty = "amount_vs_party_typical", High, "log of the claimed amount over the median amount of the earlier claims naming the same party (the party with the most earlier claims, at least 3)",
+        |v, f| format!("claimed amount {:.1} times the typical claim naming the same party (about {})", v.exp(), fmt_amount(amount_of(f) / v.exp()));
 }
 
 pub const N_FEATURES: usize = CATALOGUE.len();
 
-/// Which side of a feature's range an investigator reads as a warning sign. A model reason is
-/// only given when the claim's value lies on that side of the training average: a positive
-/// contribution from the *absence* of a signal ("0 other claimants") is arithmetic, not a
-/// reason anyone can check.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Warning {
-    /// Higher values are the warning sign (counts, amounts, flags).
-    High,
-    /// Lower values are the warning sign (days from policy start, number of parties).
-    Low,
-    /// Never a reason on its own (line of business).
-    Never,
-}
-
 pub fn warning_side(index: usize) -> Warning {
-    match CATALOGUE.get(index).map(|d| d.name) {
-        Some("days_policy_start_to_loss" | "party_count") => Warning::Low,
-        Some("line_home") | None => Warning::Never,
-        Some(_) => Warning::High,
-    }
+    CATALOGUE.get(index).map_or(Warning::Never, |d| d.warning)
 }
 
 /// The full feature vector of one claim, in catalogue order.
@@ -260,53 +313,92 @@ pub fn names() -> Vec<&'static str> {
     CATALOGUE.iter().map(|d| d.name).collect()
 }
 
-#[derive(Default, Clone, Copy, Debug, PartialEq)]
-struct EntityStats {
-    short: f64,
-    long: f64,
-    amount_long: f64,
-    other_claimants_long: f64,
-}
-
-impl EntityStats {
-    fn max(self, o: EntityStats) -> EntityStats {
-        EntityStats {
-            short: self.short.max(o.short),
-            long: self.long.max(o.long),
-            amount_long: self.amount_long.max(o.amount_long),
-            other_claimants_long: self.other_claimants_long.max(o.other_claimants_long),
-        }
+/// The smallest round figure (1, 2, 2.5 or 5 times a power of ten, 1,000 or more) above `a`.
+fn round_figure_above(a: f64) -> Option<f64> {
+    if !(a.is_finite() && a > 0.0) {
+        return None;
     }
+    let mut p = 1000.0;
+    while p <= 1e12 {
+        for m in [1.0, 2.0, 2.5, 5.0] {
+            if m * p > a {
+                return Some(m * p);
+            }
+        }
+        p *= 10.0;
+    }
+    None
 }
 
-fn entity_stats(
-    history: &dyn HistoryView,
-    key: &str,
-    t: i64,
-    claim: u64,
-    claimant: u64,
-    seen: &mut Vec<u64>,
-) -> EntityStats {
-    let mut s = EntityStats::default();
-    seen.clear();
-    let short_from = t - SHORT_WINDOW_DAYS * DAY;
-    history.for_each_event(key, t - LONG_WINDOW_DAYS * DAY, t, &mut |e| {
-        if e.claim == claim {
-            return;
-        }
-        s.long += 1.0;
-        s.amount_long += e.amount;
-        if e.at >= short_from {
-            s.short += 1.0;
-        }
-        if e.claimant != claimant {
-            seen.push(e.claimant);
-        }
-    });
-    seen.sort_unstable();
-    seen.dedup();
-    s.other_claimants_long = seen.len() as f64;
-    s
+/// The model's reasons for a score: features whose contribution raises the log-odds
+/// noticeably (by 0.2, a factor of about 1.2 in the odds), whose value lies on their warning
+/// side and is unusual (at least one standard deviation of the training data beyond its
+/// mean), strongest first. `index` maps model features to the catalogue; `z` are the
+/// standardised model features and `contrib` their contributions.
+pub fn reasons(
+    full: &FeatureVector,
+    index: &[usize],
+    z: &[f64],
+    contrib: &[f64],
+    max: usize,
+) -> Vec<crate::model::Reason> {
+    let mut order: Vec<usize> = (0..contrib.len())
+        .filter(|&i| contrib[i] > 0.2)
+        .filter(|&i| match warning_side(index[i]) {
+            Warning::High => z[i] >= 1.0,
+            Warning::Low => z[i] <= -1.0,
+            Warning::Never => false,
+        })
+        .collect();
+    order.sort_by(|&a, &b| contrib[b].total_cmp(&contrib[a]));
+    order
+        .into_iter()
+        .take(max)
+        .map(|i| {
+            let def = &CATALOGUE[index[i]];
+            crate::model::Reason {
+                code: format!("feature.{}", def.name),
+                text: (def.reason)(full[index[i]], full),
+                weight: contrib[i],
+            }
+        })
+        .collect()
+}
+
+/// One entity's earlier events in the long window, the claim's own left out.
+#[derive(Default)]
+struct Window {
+    events: Vec<HistoryEvent>,
+}
+
+impl Window {
+    fn load(&mut self, history: &dyn HistoryView, key: &str, t: i64, claim: u64) {
+        self.events.clear();
+        history.for_each_event(key, t - LONG_WINDOW_DAYS * DAY, t, &mut |e| {
+            if e.claim != claim {
+                self.events.push(*e);
+            }
+        });
+    }
+
+    /// Distinct claimants other than `claimant` among events passing `keep`.
+    fn claimants(
+        &self,
+        claimant: u64,
+        scratch: &mut Vec<u64>,
+        keep: impl Fn(&HistoryEvent) -> bool,
+    ) -> f64 {
+        scratch.clear();
+        scratch.extend(
+            self.events
+                .iter()
+                .filter(|e| e.claimant != claimant && keep(e))
+                .map(|e| e.claimant),
+        );
+        scratch.sort_unstable();
+        scratch.dedup();
+        scratch.len() as f64
+    }
 }
 
 fn b(x: bool) -> f64 {
@@ -317,21 +409,13 @@ fn b(x: bool) -> f64 {
 pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
     let mut v = [0.0; N_FEATURES];
     let t = claim.event_time();
+    let short_from = t - SHORT_WINDOW_DAYS * DAY;
     let claim_h = stable_hash(&claim.claim_id);
-    let claimant_h = stable_hash(&claim.claimant_id);
-    let mut seen = Vec::new();
-    // One key buffer for every entity of the claim, rather than a new String each.
-    let mut key = String::with_capacity(96);
-    let mut stats = |kind: &str, id: &str| {
-        key.clear();
-        key.push_str(kind);
-        key.push(':');
-        key.push_str(id);
-        entity_stats(history, &key, t, claim_h, claimant_h, &mut seen)
-    };
+    let me = stable_hash(&claim.claimant_id);
+    let amount = claim.claimed_amount;
 
-    v[F::AmountRatio as usize] = claim.claimed_amount / claim.sum_insured;
-    v[F::LogAmount as usize] = claim.claimed_amount.ln_1p();
+    v[F::AmountRatio as usize] = amount / claim.sum_insured;
+    v[F::LogAmount as usize] = amount.ln_1p();
     v[F::DaysPolicyToLoss as usize] = (claim.loss_date - claim.policy_start).num_days() as f64;
     v[F::DaysLossToReport as usize] =
         (claim.reported_at.date_naive() - claim.loss_date).num_days() as f64;
@@ -346,39 +430,166 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
     v[F::PartyCount as usize] = claim.parties.len() as f64;
     v[F::NewPolicyLoss as usize] = b(v[F::DaysPolicyToLoss as usize] < 30.0);
     v[F::LateReport as usize] = b(v[F::DaysLossToReport as usize] > 30.0);
+    v[F::RoundAmount as usize] = b(amount >= 500.0 && (amount / 100.0).fract() == 0.0);
+    v[F::BelowRound as usize] = b(round_figure_above(amount).is_some_and(|r| amount >= 0.98 * r));
+    v[F::Catastrophe as usize] = b(claim.catastrophe_code.is_some());
 
-    let c = stats("claimant", &claim.claimant_id);
-    v[F::ClaimantShort as usize] = c.short;
-    v[F::ClaimantLong as usize] = c.long;
-    v[F::ClaimantAmountLong as usize] = c.amount_long.ln_1p();
-    v[F::PolicyLong as usize] = stats("policy", &claim.policy_id).long;
-
-    let mut by_role = |role: Role| {
-        claim
-            .parties
-            .iter()
-            .filter(|p| p.role == role)
-            .map(|p| stats(role.as_str(), &p.id))
-            .fold(EntityStats::default(), EntityStats::max)
+    let mut key = String::with_capacity(96);
+    let mut scratch = Vec::new();
+    let mut w = Window::default();
+    let mut load = |w: &mut Window, kind: &str, id: &str| {
+        key.clear();
+        key.push_str(kind);
+        key.push(':');
+        key.push_str(id);
+        w.load(history, &key, t, claim_h);
     };
-    let r = by_role(Role::Repairer);
-    v[F::RepairerShort as usize] = r.short;
-    v[F::RepairerClaimants as usize] = r.other_claimants_long;
-    let m = by_role(Role::MedicalProvider);
-    v[F::MedicalShort as usize] = m.short;
-    v[F::MedicalClaimants as usize] = m.other_claimants_long;
-    let a = by_role(Role::Attorney);
-    v[F::AttorneyLong as usize] = a.long;
-    v[F::AttorneyClaimants as usize] = a.other_claimants_long;
-    let p = by_role(Role::PayeeAccount);
-    v[F::PayeeLong as usize] = p.long;
-    v[F::PayeeClaimants as usize] = p.other_claimants_long;
-    v[F::WitnessLong as usize] = by_role(Role::Witness).long;
 
+    load(&mut w, "claimant", &claim.claimant_id);
+    v[F::ClaimantShort as usize] = w.events.iter().filter(|e| e.at >= short_from).count() as f64;
+    v[F::ClaimantLong as usize] = w.events.len() as f64;
+    v[F::ClaimantAmountLong as usize] = w.events.iter().map(|e| e.amount).sum::<f64>().ln_1p();
+    load(&mut w, "policy", &claim.policy_id);
+    v[F::PolicyLong as usize] = w.events.len() as f64;
+
+    // Claims filed under the same catastrophe event: a storm's contractors are busy for it.
+    let mut storm: Vec<u64> = Vec::new();
+    if let Some(code) = &claim.catastrophe_code {
+        load(&mut w, crate::claim::CATASTROPHE_KIND, code);
+        storm = w.events.iter().map(|e| e.claim).collect();
+        storm.sort_unstable();
+    }
+
+    // Per party: its window, kept for the pair, similarity and typical-amount features.
+    let mut windows: Vec<(Role, Window)> = Vec::with_capacity(claim.parties.len());
+    let mut linked_long: Vec<u64> = Vec::new();
+    let mut linked_short: Vec<u64> = Vec::new();
+    for p in &claim.parties {
+        let mut pw = Window::default();
+        load(&mut pw, p.role.as_str(), &p.id);
+        let (recent_i, burst_i, long_i) = match p.role {
+            Role::Repairer => (F::RepairerRecent, Some(F::RepairerBurst), None),
+            Role::MedicalProvider => (F::MedicalRecent, Some(F::MedicalBurst), None),
+            Role::Attorney => (F::AttorneyRecent, Some(F::AttorneyBurst), None),
+            Role::PayeeAccount => (F::PayeeClaimants, None, Some(())),
+            Role::Witness => (F::WitnessClaimants, None, Some(())),
+            Role::ThirdParty => (F::ThirdPartyClaimants, None, Some(())),
+        };
+        if let Some(burst_i) = burst_i {
+            let not_storm = |e: &HistoryEvent| storm.binary_search(&e.claim).is_err();
+            let recent = pw.claimants(me, &mut scratch, |e| e.at >= short_from && not_storm(e));
+            let past = pw.claimants(me, &mut scratch, |e| e.at < short_from && not_storm(e));
+            let usual =
+                past * SHORT_WINDOW_DAYS as f64 / (LONG_WINDOW_DAYS - SHORT_WINDOW_DAYS) as f64;
+            let burst = (recent + 1.0) / (usual + 1.0);
+            if burst > v[burst_i as usize] {
+                v[burst_i as usize] = burst;
+            }
+            // Shown beside the burst in its reason: the firm with the highest burst.
+            if burst >= v[burst_i as usize] {
+                v[recent_i as usize] = recent;
+            }
+        }
+        if long_i.is_some() {
+            let c = pw.claimants(me, &mut scratch, |_| true);
+            v[recent_i as usize] = v[recent_i as usize].max(c);
+            for e in pw.events.iter().filter(|e| e.claimant != me) {
+                linked_long.push(e.claimant);
+                if e.at >= short_from {
+                    linked_short.push(e.claimant);
+                }
+            }
+        }
+        windows.push((p.role, pw));
+    }
     if let Some(addr) = &claim.address_id {
-        let s = stats("address", addr);
-        v[F::AddressLong as usize] = s.long;
-        v[F::AddressClaimants as usize] = s.other_claimants_long;
+        load(&mut w, "address", addr);
+        v[F::AddressClaimants as usize] = w.claimants(me, &mut scratch, |_| true);
+        for e in w.events.iter().filter(|e| e.claimant != me) {
+            linked_long.push(e.claimant);
+            if e.at >= short_from {
+                linked_short.push(e.claimant);
+            }
+        }
+    }
+    for l in [&mut linked_long, &mut linked_short] {
+        l.sort_unstable();
+        l.dedup();
+    }
+    v[F::LinkedLong as usize] = linked_long.len() as f64;
+    v[F::LinkedShort as usize] = linked_short.len() as f64;
+
+    // Parties named together on other claimants' claims.
+    let mut by_claim: Vec<Vec<(u64, u64)>> = windows
+        .iter()
+        .map(|(_, pw)| {
+            let mut c: Vec<(u64, u64)> = pw.events.iter().map(|e| (e.claim, e.claimant)).collect();
+            c.sort_unstable();
+            c.dedup();
+            c
+        })
+        .collect();
+    let mut best_pair = 0.0f64;
+    for i in 0..by_claim.len() {
+        for j in i + 1..by_claim.len() {
+            if claim.parties[i].id == claim.parties[j].id
+                && claim.parties[i].role == claim.parties[j].role
+            {
+                continue;
+            }
+            scratch.clear();
+            let (a, bb) = (&by_claim[i], &by_claim[j]);
+            let (mut x, mut y) = (0, 0);
+            while x < a.len() && y < bb.len() {
+                match a[x].0.cmp(&bb[y].0) {
+                    std::cmp::Ordering::Less => x += 1,
+                    std::cmp::Ordering::Greater => y += 1,
+                    std::cmp::Ordering::Equal => {
+                        if a[x].1 != me {
+                            scratch.push(a[x].1);
+                        }
+                        x += 1;
+                        y += 1;
+                    }
+                }
+            }
+            scratch.sort_unstable();
+            scratch.dedup();
+            best_pair = best_pair.max(scratch.len() as f64);
+        }
+    }
+    by_claim.clear();
+    v[F::PairClaimants as usize] = best_pair;
+
+    // Amounts against the same parties' earlier claims.
+    let mut best_share = 0.0f64;
+    let mut typical_from: Option<&Window> = None;
+    for (_, pw) in &windows {
+        let k = pw.events.len();
+        if k < 3 {
+            continue;
+        }
+        let close = pw
+            .events
+            .iter()
+            .filter(|e| (e.amount - amount).abs() <= 0.15 * amount)
+            .count();
+        best_share = best_share.max(close as f64 / k as f64);
+        if typical_from.is_none_or(|t| k > t.events.len()) {
+            typical_from = Some(pw);
+        }
+    }
+    v[F::SimilarAmounts as usize] = best_share;
+    if let Some(pw) = typical_from {
+        let mut logs: Vec<f64> = pw.events.iter().map(|e| e.amount.max(1e-9).ln()).collect();
+        logs.sort_by(f64::total_cmp);
+        let m = logs.len();
+        let median = if m % 2 == 1 {
+            logs[m / 2]
+        } else {
+            0.5 * (logs[m / 2 - 1] + logs[m / 2])
+        };
+        v[F::AmountVsParty as usize] = amount.max(1e-9).ln() - median;
     }
     v
 }
@@ -442,19 +653,89 @@ mod tests {
             h.record(c);
         }
         let v = compute(&c4, &h);
-        // R1 earlier: C1 (144 days before), C2 (24 days), C3 (5 days); 30-day window holds 2.
-        assert_eq!(get(&v, "repairer_claims_30d"), 2.0);
-        // Other claimants of R1 within a year: K1 and K3 (K2 is this claimant).
-        assert_eq!(get(&v, "repairer_claimants_365d"), 2.0);
+        // R1 earlier: C1 by K1 (144 days before), C2 by K2 (24 days), C3 by K3 (5 days). K2 is
+        // this claimant, so the other claimants in 30 days are K3 alone, and before that K1.
+        assert_eq!(get(&v, "repairer_claimants_30d"), 1.0);
+        let usual = 1.0 * 30.0 / 335.0;
+        assert!((get(&v, "repairer_burst") - 2.0 / (1.0 + usual)).abs() < 1e-12);
         assert_eq!(get(&v, "claimant_claims_365d"), 1.0);
         assert_eq!(get(&v, "claimant_claims_30d"), 1.0);
         assert!((get(&v, "claimant_log_amount_365d") - 2000f64.ln_1p()).abs() < 1e-12);
+        // R1 has 3 earlier claims (1000, 2000, 3000): none within 15% of 500; the median is
+        // 2000, so the amount is a quarter of the typical one.
+        assert_eq!(get(&v, "party_similar_amount_share"), 0.0);
+        assert!((get(&v, "amount_vs_party_typical") - (500f64 / 2000.0).ln()).abs() < 1e-12);
         // A later claim is invisible, and a claim never sees itself.
         h.record(&c4);
         let v3 = compute(&c3, &h);
-        assert_eq!(get(&v3, "repairer_claims_30d"), 1.0);
+        assert_eq!(
+            get(&v3, "repairer_claimants_30d"),
+            1.0,
+            "K2 (C2) 19 days before"
+        );
         let v4 = compute(&c4, &h);
         assert_eq!(v4, v, "recording the claim itself changes nothing");
+    }
+
+    #[test]
+    fn personal_links_pairs_and_round_figures() {
+        let mk = |id: &str, k: &str, day: &str, parties: serde_json::Value, amount: f64| {
+            Claim::from_value(&json!({
+                "claim_id": id, "policy_id": format!("P-{k}"), "claimant_id": k,
+                "line": "motor", "loss_date": day, "reported_at": format!("{day}T10:00:00Z"),
+                "policy_start": "2024-01-01", "claimed_amount": amount, "sum_insured": 10000,
+                "currency": "EUR", "parties": parties,
+                "circumstances": {"police_report": true, "injury": true}
+            }))
+            .unwrap()
+        };
+        let mut h = MemoryHistory::new();
+        // Two other claimants share the bank account B1; one of them also names M1 with A1.
+        h.record(&mk("C1", "K1", "2025-03-01", json!([{"role": "payee_account", "id": "B1"}, {"role": "medical_provider", "id": "M1"}, {"role": "attorney", "id": "A1"}]), 1000.0));
+        h.record(&mk(
+            "C2",
+            "K2",
+            "2025-05-20",
+            json!([{"role": "payee_account", "id": "B1"}]),
+            1000.0,
+        ));
+        h.record(&mk(
+            "C3",
+            "K3",
+            "2025-05-21",
+            json!([{"role": "medical_provider", "id": "M1"}]),
+            1000.0,
+        ));
+        let c = mk(
+            "C9",
+            "K9",
+            "2025-06-01",
+            json!([{"role": "payee_account", "id": "B1"}, {"role": "medical_provider", "id": "M1"}, {"role": "attorney", "id": "A1"}]),
+            4950.0,
+        );
+        let v = compute(&c, &h);
+        assert_eq!(get(&v, "payee_account_claimants_365d"), 2.0);
+        assert_eq!(
+            get(&v, "linked_claimants_365d"),
+            2.0,
+            "K1 and K2 through B1"
+        );
+        assert_eq!(
+            get(&v, "linked_claimants_30d"),
+            1.0,
+            "K2 only, 12 days before"
+        );
+        // B1+M1 and B1+A1 and M1+A1 each appear together on C1 (K1) alone.
+        assert_eq!(get(&v, "party_pair_claimants_365d"), 1.0);
+        assert_eq!(
+            get(&v, "amount_just_below_round_figure"),
+            1.0,
+            "4,950 under 5,000"
+        );
+        assert_eq!(get(&v, "amount_round_figure"), 0.0);
+        assert_eq!(fmt_amount(4335.2), "4,335");
+        assert_eq!(fmt_amount(1_250_000.0), "1,250,000");
+        assert_eq!(fmt_amount(999.0), "999");
     }
 
     #[test]

@@ -375,19 +375,48 @@ fn print_summary(r: &train::Report, out: &std::path::Path) {
         r.rule.capacity_k
     );
     println!(
-        "{:<34} {:>7} {:>9} {:>7} {:>13} {:>10} {:>9} {:>9}",
-        "model", "CV AUC", "test AUC", "AP", "prec@capacity", "rec@cap", "referred", "precision"
+        "cross-validation ({} time-ordered folds of the training part):",
+        r.cross_validation.first().map_or(0, |c| c.fold_auc.len())
+    );
+    println!(
+        "  {:<58} {:>13} {:>7} {:>7} {:>10}",
+        "candidate", "prec@capacity", "AP", "AUC", "calibrated"
+    );
+    for c in &r.cross_validation {
+        println!(
+            "  {:<58} {:>13} {:>7.3} {:>7.3} {:>10}",
+            c.name,
+            pct(Some(c.mean_precision_at_capacity)),
+            c.mean_average_precision,
+            c.mean_auc,
+            c.calibration.as_str()
+        );
+    }
+    if !r.duplicate_features.is_empty() {
+        let d: Vec<String> = r
+            .duplicate_features
+            .iter()
+            .map(|(a, b)| format!("{a} (= {b})"))
+            .collect();
+        println!("  left out as exact duplicates: {}", d.join(", "));
+    }
+    println!("\n{}.\n", r.selection);
+    println!("held out (later claims, never used in fitting or selection):");
+    println!(
+        "  {:<58} {:>7} {:>7} {:>8} {:>8} {:>9} {:>8} {:>6} {:>9}",
+        "model", "AUC", "AP", "prec@2%", "prec@5%", "prec@cap", "rec@cap", "ECE", "precision"
     );
     for h in &r.held_out {
         println!(
-            "{:<34} {:>7.3} {:>9} {:>7} {:>13} {:>10} {:>9} {:>9}",
+            "  {:<58} {:>7} {:>7} {:>8} {:>8} {:>9} {:>8} {:>6} {:>9}",
             h.model,
-            h.cv_mean_auc,
             num(h.auc),
             num(h.average_precision),
+            pct(h.precision_at_2pct),
+            pct(h.precision_at_5pct),
             pct(h.precision_at_capacity),
             pct(h.recall_at_capacity),
-            h.referred,
+            num(h.expected_calibration_error),
             pct(h.precision)
         );
     }

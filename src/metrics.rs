@@ -219,6 +219,32 @@ pub fn calibration_table(probs: &[f64], labels: &[bool], n_bins: usize) -> Vec<C
         .collect()
 }
 
+/// Expected calibration error over the same equal-width bins as [`calibration_table`]: the
+/// count-weighted mean of |mean predicted − observed rate| (Naeini, Cooper and Hauskrecht,
+/// 2015). `None` for no claims.
+pub fn expected_calibration_error(probs: &[f64], labels: &[bool], n_bins: usize) -> Option<f64> {
+    if probs.is_empty() {
+        return None;
+    }
+    let n = probs.len() as f64;
+    Some(
+        calibration_table(probs, labels, n_bins)
+            .iter()
+            .map(|b| b.count as f64 / n * (b.mean_predicted - b.observed_rate).abs())
+            .sum(),
+    )
+}
+
+/// Brier score: the mean squared difference between probability and outcome (0 for none).
+pub fn brier(probs: &[f64], labels: &[bool]) -> f64 {
+    probs
+        .iter()
+        .zip(labels)
+        .map(|(p, &t)| (p - f64::from(u8::from(t))).powi(2))
+        .sum::<f64>()
+        / probs.len().max(1) as f64
+}
+
 /// Everything `weir evaluate` reports for one score file.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Evaluation {

@@ -7,7 +7,7 @@
 //! score. Loading never panics: every incompatibility is an [`ArtifactError`] that says what is
 //! wrong.
 
-use crate::features::{self, CATALOGUE, FeatureVector};
+use crate::features::{self, FeatureVector};
 use crate::monitor::drift::Baseline;
 use crate::outliers::OutlierModel;
 use forust_ml::gradientbooster::ContributionsMethod;
@@ -18,7 +18,9 @@ use sha2::{Digest, Sha256};
 use std::path::Path;
 
 pub const ARTIFACT_FORMAT: &str = "weir-model";
-pub const ARTIFACT_FORMAT_VERSION: u32 = 1;
+/// Version 2: calibration is Platt or isotonic, the classifier may be a blend, and tree
+/// settings carry the minimum leaf weight. Version 1 files are refused with that message.
+pub const ARTIFACT_FORMAT_VERSION: u32 = 2;
 
 /// Per-feature centring and scaling (population standard deviation, as scikit-learn's
 /// `StandardScaler`); a constant feature gets scale 1 so it maps to 0.
@@ -236,6 +238,8 @@ pub struct TreeSettings {
     pub iterations: usize,
     pub learning_rate: f32,
     pub max_depth: usize,
+    /// Least sum of hessians in a leaf (forust's `min_leaf_weight`): larger is smoother.
+    pub min_leaf_weight: f32,
     pub seed: u64,
 }
 
@@ -245,6 +249,7 @@ impl Default for TreeSettings {
             iterations: 150,
             learning_rate: 0.1,
             max_depth: 4,
+            min_leaf_weight: 1.0,
             seed: 0,
         }
     }
@@ -280,6 +285,7 @@ impl Trees {
             .set_iterations(s.iterations)
             .set_learning_rate(s.learning_rate)
             .set_max_depth(s.max_depth)
+            .set_min_leaf_weight(s.min_leaf_weight)
             .set_seed(s.seed)
             .set_parallel(true);
         booster
@@ -393,6 +399,165 @@ impl Platt {
     }
 }
 
+/// Isotonic calibration: the non-decreasing step function of the margin that best fits the
+/// labels in squared error (pool adjacent violators), read between its knots by linear
+/// interpolation and clipped outside them: scikit-learn's
+/// `IsotonicRegression(out_of_bounds="clip")`, which the reference tests compare it with.
+/// Only the first and last knot of each constant block are kept (as scikit-learn does): the
+/// interpolation is the same, and the artifact stays small.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Isotonic {
+    pub x: Vec<f64>,
+    pub y: Vec<f64>,
+}
+
+impl Isotonic {
+    pub fn fit(margins: &[f64], y: &[bool]) -> Isotonic {
+        let weights = vec![1.0; margins.len()];
+        let targets: Vec<f64> = y.iter().map(|&v| f64::from(u8::from(v))).collect();
+        Isotonic::fit_weighted(margins, &targets, &weights)
+    }
+
+    pub fn fit_weighted(x: &[f64], t: &[f64], w: &[f64]) -> Isotonic {
+        let mut order: Vec<usize> = (0..x.len()).filter(|&i| x[i].is_finite()).collect();
+        order.sort_by(|&a, &b| x[a].total_cmp(&x[b]));
+        // Equal x values become one point with their weighted mean target.
+        let (mut ux, mut uy, mut uw): (Vec<f64>, Vec<f64>, Vec<f64>) = (vec![], vec![], vec![]);
+        for i in order {
+            if ux.last() == Some(&x[i]) {
+                let k = ux.len() - 1;
+                uy[k] += w[i] * t[i];
+                uw[k] += w[i];
+            } else {
+                ux.push(x[i]);
+                uy.push(w[i] * t[i]);
+                uw.push(w[i]);
+            }
+        }
+        for (v, wt) in uy.iter_mut().zip(&uw) {
+            *v /= wt.max(f64::MIN_POSITIVE);
+        }
+        // Pool adjacent violators: blocks of (mean, weight, count of points).
+        let mut blocks: Vec<(f64, f64, usize)> = Vec::with_capacity(ux.len());
+        for (&v, &wt) in uy.iter().zip(&uw) {
+            blocks.push((v, wt, 1));
+            while blocks.len() > 1 {
+                let (m2, w2, n2) = blocks[blocks.len() - 1];
+                let (m1, w1, n1) = blocks[blocks.len() - 2];
+                if m1 <= m2 {
+                    break;
+                }
+                blocks.pop();
+                let wsum = w1 + w2;
+                *blocks.last_mut().expect("two blocks") =
+                    ((m1 * w1 + m2 * w2) / wsum, wsum, n1 + n2);
+            }
+        }
+        let (mut kx, mut ky) = (Vec::new(), Vec::new());
+        let mut start = 0;
+        for (m, _, n) in blocks {
+            kx.push(ux[start]);
+            ky.push(m);
+            if n > 1 {
+                kx.push(ux[start + n - 1]);
+                ky.push(m);
+            }
+            start += n;
+        }
+        Isotonic { x: kx, y: ky }
+    }
+
+    pub fn apply(&self, margin: f64) -> f64 {
+        let (x, y) = (&self.x, &self.y);
+        match x.len() {
+            0 => 0.5,
+            _ if margin <= x[0] => y[0],
+            n if margin >= x[n - 1] => y[n - 1],
+            _ => {
+                let j = x.partition_point(|&v| v <= margin); // x[j-1] <= margin < x[j]
+                let (x0, x1, y0, y1) = (x[j - 1], x[j], y[j - 1], y[j]);
+                if x1 > x0 {
+                    y0 + (y1 - y0) * (margin - x0) / (x1 - x0)
+                } else {
+                    y1
+                }
+            }
+        }
+    }
+}
+
+/// How margins become probabilities. Training fits both on out-of-fold margins, compares them
+/// out of fold (each fitted without the fold it is judged on) and keeps the better.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum Calibration {
+    Platt(Platt),
+    Isotonic(Isotonic),
+}
+
+impl Calibration {
+    pub fn fit(kind: CalibrationKind, margins: &[f64], y: &[bool]) -> Calibration {
+        match kind {
+            CalibrationKind::Platt => Calibration::Platt(Platt::fit(margins, y)),
+            CalibrationKind::Isotonic => Calibration::Isotonic(Isotonic::fit(margins, y)),
+        }
+    }
+
+    pub fn apply(&self, margin: f64) -> f64 {
+        match self {
+            Calibration::Platt(p) => p.apply(margin),
+            Calibration::Isotonic(i) => i.apply(margin),
+        }
+    }
+
+    pub fn kind(&self) -> CalibrationKind {
+        match self {
+            Calibration::Platt(_) => CalibrationKind::Platt,
+            Calibration::Isotonic(_) => CalibrationKind::Isotonic,
+        }
+    }
+
+    /// Problems that make the calibration unusable (a loaded file is checked with this).
+    fn problem(&self) -> Option<String> {
+        match self {
+            Calibration::Platt(p) if !(p.a.is_finite() && p.b.is_finite()) => {
+                Some("calibration: Platt parameters must be finite".into())
+            }
+            Calibration::Platt(p) if p.a <= 0.0 || p.a.abs() > 1e6 || p.b.abs() > 1e6 => Some(
+                "calibration: Platt slope must be positive and both parameters within 1e6".into(),
+            ),
+            Calibration::Isotonic(i)
+                if i.x.len() != i.y.len()
+                    || i.x.is_empty()
+                    || i.x.windows(2).any(|w| w[0] > w[1])
+                    || i.y.windows(2).any(|w| w[0] > w[1])
+                    || i.x.iter().any(|v| !v.is_finite())
+                    || i.y.iter().any(|v| !(0.0..=1.0).contains(v)) =>
+            {
+                Some("calibration: isotonic knots must be finite, non-decreasing, equal in number, with probabilities in [0, 1]".into())
+            }
+            _ => None,
+        }
+    }
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum CalibrationKind {
+    Platt,
+    Isotonic,
+}
+
+impl CalibrationKind {
+    pub const ALL: [CalibrationKind; 2] = [CalibrationKind::Platt, CalibrationKind::Isotonic];
+    pub fn as_str(self) -> &'static str {
+        match self {
+            CalibrationKind::Platt => "platt",
+            CalibrationKind::Isotonic => "isotonic",
+        }
+    }
+}
+
 /// Which classifier the artifact carries, with its parameters.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "kind", rename_all = "snake_case")]
@@ -402,6 +567,25 @@ pub enum ClassifierSpec {
         settings: TreeSettings,
         booster: serde_json::Value,
     },
+    /// A weighted mean of calibrated member probabilities, carried as log-odds so that the
+    /// artifact's own calibration maps it back to a probability. Members read the artifact's
+    /// feature list (logistic members its standardiser too).
+    Blend {
+        members: Vec<BlendMember>,
+    },
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct BlendMember {
+    pub classifier: ClassifierSpec,
+    pub calibration: Calibration,
+    pub weight: f64,
+}
+
+/// Log-odds of a probability, kept finite.
+pub fn logit(p: f64) -> f64 {
+    let p = p.clamp(1e-9, 1.0 - 1e-9);
+    (p / (1.0 - p)).ln()
 }
 
 /// Drift baselines recorded at training time.
@@ -438,7 +622,7 @@ pub struct ModelArtifact {
     pub features: Vec<String>,
     pub standardiser: Standardiser,
     pub classifier: ClassifierSpec,
-    pub calibration: Platt,
+    pub calibration: Calibration,
     /// Probability at or above which the training rule refers a claim (see the report).
     pub threshold: f64,
     pub outliers: OutlierModel,
@@ -546,6 +730,96 @@ pub struct Scored {
 enum Classifier {
     Logistic(Logistic),
     Trees(Trees),
+    Blend(Vec<(Classifier, Calibration, f64)>),
+}
+
+impl Classifier {
+    fn from_spec(
+        spec: &ClassifierSpec,
+        d: usize,
+        depth: usize,
+    ) -> Result<Classifier, ArtifactError> {
+        Ok(match spec {
+            ClassifierSpec::LogisticRegression(l) => {
+                if l.coef.len() != d {
+                    return Err(ArtifactError::Shape(format!(
+                        "classifier.coef has {} entries for {d} features",
+                        l.coef.len()
+                    )));
+                }
+                if l.coef.iter().any(|c| !c.is_finite()) || !l.intercept.is_finite() {
+                    return Err(ArtifactError::Shape(
+                        "classifier: coefficients must be finite".into(),
+                    ));
+                }
+                Classifier::Logistic(l.clone())
+            }
+            ClassifierSpec::BoostedTrees { booster, .. } => Classifier::Trees(
+                Trees::from_value(booster)
+                    .map_err(|e| ArtifactError::Shape(format!("classifier.booster: {e}")))?,
+            ),
+            ClassifierSpec::Blend { members } => {
+                if depth > 0 || members.is_empty() {
+                    return Err(ArtifactError::Shape(
+                        "classifier: a blend needs members, and members cannot be blends".into(),
+                    ));
+                }
+                let total: f64 = members.iter().map(|m| m.weight).sum();
+                if members
+                    .iter()
+                    .any(|m| !(m.weight.is_finite() && m.weight > 0.0))
+                    || (total - 1.0).abs() > 1e-6
+                {
+                    return Err(ArtifactError::Shape(
+                        "classifier: blend weights must be positive and add up to 1".into(),
+                    ));
+                }
+                let mut out = Vec::with_capacity(members.len());
+                for m in members {
+                    if let Some(p) = m.calibration.problem() {
+                        return Err(ArtifactError::Shape(format!("blend member {p}")));
+                    }
+                    out.push((
+                        Classifier::from_spec(&m.classifier, d, depth + 1)?,
+                        m.calibration.clone(),
+                        m.weight,
+                    ));
+                }
+                Classifier::Blend(out)
+            }
+        })
+    }
+
+    /// Margin of one row (`x` raw, `z` standardised), writing per-feature contributions to
+    /// the log-odds into `contrib`.
+    fn margin(&self, x: &[f64], z: &[f64], contrib: &mut [f64]) -> f64 {
+        match self {
+            Classifier::Logistic(l) => {
+                for ((o, w), v) in contrib.iter_mut().zip(&l.coef).zip(z) {
+                    *o = w * v;
+                }
+                l.margin(z)
+            }
+            Classifier::Trees(t) => {
+                let d = x.len();
+                let m = t.margins(ArrayView2::from_shape((1, d), x).expect("1 row"));
+                contrib[..d].copy_from_slice(&t.contributions(x));
+                m[0]
+            }
+            Classifier::Blend(members) => {
+                let mut p = 0.0;
+                let mut part = [0.0; features::N_FEATURES];
+                contrib.iter_mut().for_each(|c| *c = 0.0);
+                for (c, cal, w) in members {
+                    p += w * cal.apply(c.margin(x, z, &mut part[..x.len()]));
+                    for (o, v) in contrib.iter_mut().zip(&part) {
+                        *o += w * v;
+                    }
+                }
+                logit(p)
+            }
+        }
+    }
 }
 
 /// A checked artifact, ready to score.
@@ -585,9 +859,10 @@ impl Model {
             .scale
             .iter()
             .any(|s| !(s.is_finite() && *s > 0.0))
+            || artifact.standardiser.mean.iter().any(|m| !m.is_finite())
         {
             return Err(ArtifactError::Shape(
-                "standardiser.scale must be finite and positive".into(),
+                "standardiser: means must be finite and scales finite and positive".into(),
             ));
         }
         if artifact.outliers.centres.is_empty()
@@ -601,18 +876,16 @@ impl Model {
         if artifact.baselines.features.len() != d {
             return shape("baselines.features", artifact.baselines.features.len());
         }
-        let classifier = match &artifact.classifier {
-            ClassifierSpec::LogisticRegression(l) => {
-                if l.coef.len() != d {
-                    return shape("classifier.coef", l.coef.len());
-                }
-                Classifier::Logistic(l.clone())
-            }
-            ClassifierSpec::BoostedTrees { booster, .. } => Classifier::Trees(
-                Trees::from_value(booster)
-                    .map_err(|e| ArtifactError::Shape(format!("classifier.booster: {e}")))?,
-            ),
-        };
+        if !(0.0..=1.0).contains(&artifact.threshold) {
+            return Err(ArtifactError::Shape(format!(
+                "threshold {} is not a probability (0 to 1)",
+                artifact.threshold
+            )));
+        }
+        if let Some(p) = artifact.calibration.problem() {
+            return Err(ArtifactError::Shape(p));
+        }
+        let classifier = Classifier::from_spec(&artifact.classifier, d, 0)?;
         Ok(Model {
             artifact,
             index,
@@ -631,15 +904,16 @@ impl Model {
 
     /// Uncalibrated margins (log-odds) for rows of model features.
     pub fn margins(&self, x: ArrayView2<f64>) -> Vec<f64> {
-        match &self.classifier {
-            Classifier::Logistic(l) => {
-                let z = self.artifact.standardiser.apply(x);
-                z.outer_iter()
-                    .map(|r| l.margin(r.as_slice().unwrap_or(&r.to_vec())))
-                    .collect()
-            }
-            Classifier::Trees(t) => t.margins(x),
-        }
+        let d = x.ncols();
+        let mut z = vec![0.0; d];
+        let mut c = vec![0.0; d];
+        x.outer_iter()
+            .map(|r| {
+                let r = r.to_vec();
+                self.artifact.standardiser.apply_row(&r, &mut z);
+                self.classifier.margin(&r, &z, &mut c)
+            })
+            .collect()
     }
 
     pub fn calibrated(&self, margin: f64) -> f64 {
@@ -659,52 +933,18 @@ impl Model {
         self.artifact.standardiser.apply_row(x, z);
         let z = &*z;
         let mut cb = [0.0; features::N_FEATURES];
-        let margin = match &self.classifier {
-            Classifier::Logistic(l) => {
-                for ((o, w), v) in cb.iter_mut().zip(&l.coef).zip(z) {
-                    *o = w * v;
-                }
-                l.margin(z)
-            }
-            Classifier::Trees(t) => {
-                let m = t.margins(ArrayView2::from_shape((1, d), x).expect("1 row"));
-                cb[..d].copy_from_slice(&t.contributions(x));
-                m[0]
-            }
-        };
+        let margin = self.classifier.margin(x, z, &mut cb[..d]);
         let (cluster, outlier_score) = self.artifact.outliers.score(ArrayView1::from(z));
         Scored {
             probability: self.calibrated(margin),
             outlier_score,
             cluster,
-            reasons: self.reasons(x, z, &cb[..d]),
+            reasons: self.reasons(full, z, &cb[..d]),
         }
     }
 
-    fn reasons(&self, x: &[f64], z: &[f64], contrib: &[f64]) -> Vec<Reason> {
-        // Only features that move the log-odds noticeably (a factor of about 1.2 in the odds)
-        // and whose value is on their warning side of the training average.
-        let mut order: Vec<usize> = (0..contrib.len())
-            .filter(|&i| contrib[i] > 0.2)
-            .filter(|&i| match features::warning_side(self.index[i]) {
-                features::Warning::High => z[i] > 0.0,
-                features::Warning::Low => z[i] < 0.0,
-                features::Warning::Never => false,
-            })
-            .collect();
-        order.sort_by(|&a, &b| contrib[b].total_cmp(&contrib[a]));
-        order
-            .into_iter()
-            .take(MAX_REASONS)
-            .map(|i| {
-                let def = &CATALOGUE[self.index[i]];
-                Reason {
-                    code: format!("feature.{}", def.name),
-                    text: (def.reason)(x[i]),
-                    weight: contrib[i],
-                }
-            })
-            .collect()
+    fn reasons(&self, full: &FeatureVector, z: &[f64], contrib: &[f64]) -> Vec<Reason> {
+        features::reasons(full, &self.index, z, contrib, MAX_REASONS)
     }
 }
 

@@ -24,8 +24,9 @@ use crate::features::{self, FeatureVector, MemoryHistory};
 use crate::feedback::Outcome;
 use crate::metrics::{self, CalibrationBin, Confusion};
 use crate::model::{
-    ARTIFACT_FORMAT, ARTIFACT_FORMAT_VERSION, Baselines, ClassifierSpec, Logistic, Model,
-    ModelArtifact, Platt, Standardiser, TrainingInfo, TreeSettings, Trees,
+    ARTIFACT_FORMAT, ARTIFACT_FORMAT_VERSION, Baselines, BlendMember, Calibration, CalibrationKind,
+    ClassifierSpec, Logistic, Model, ModelArtifact, Standardiser, TrainingInfo, TreeSettings,
+    Trees, logit,
 };
 use crate::monitor::drift::{Baseline, DEFAULT_BINS};
 use crate::outliers::{KMeansSettings, OutlierModel};
@@ -236,19 +237,76 @@ fn balance_weights(y: &[bool]) -> Vec<f64> {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "model", rename_all = "snake_case")]
 pub enum Candidate {
-    LogisticRegression { alpha: f64 },
+    LogisticRegression {
+        alpha: f64,
+    },
     BoostedTrees(TreeSettings),
+    /// The mean of its members' calibrated probabilities.
+    Blend {
+        members: Vec<Candidate>,
+    },
 }
 
 impl Candidate {
-    fn name(&self) -> String {
+    pub fn name(&self) -> String {
         match self {
             Candidate::LogisticRegression { alpha } => {
                 format!("logistic_regression(alpha={alpha})")
             }
-            Candidate::BoostedTrees(_) => "boosted_trees".into(),
+            Candidate::BoostedTrees(s) => format!(
+                "boosted_trees(rounds={},lr={},depth={},leaf={})",
+                s.iterations, s.learning_rate, s.max_depth, s.min_leaf_weight
+            ),
+            Candidate::Blend { members } => format!(
+                "blend({})",
+                members
+                    .iter()
+                    .map(Candidate::name)
+                    .collect::<Vec<_>>()
+                    .join(" + ")
+            ),
         }
     }
+
+    fn is_logistic(&self) -> bool {
+        matches!(self, Candidate::LogisticRegression { .. })
+    }
+
+    fn is_trees(&self) -> bool {
+        matches!(self, Candidate::BoostedTrees(_))
+    }
+}
+
+/// The tree settings the bounded search tries: `search` distinct points of the configured grid,
+/// drawn with the training seed (the first point is always the grid's middle-of-the-road
+/// corner: the first value of every axis).
+pub fn tree_search(t: &crate::config::Trees, seed: u64) -> Vec<TreeSettings> {
+    use rand::SeedableRng;
+    use rand::seq::SliceRandom;
+    let mut grid = Vec::new();
+    for &iterations in &t.iterations {
+        for &learning_rate in &t.learning_rate {
+            for &max_depth in &t.max_depth {
+                for &min_leaf_weight in &t.min_leaf_weight {
+                    grid.push(TreeSettings {
+                        iterations,
+                        learning_rate,
+                        max_depth,
+                        min_leaf_weight,
+                        seed,
+                    });
+                }
+            }
+        }
+    }
+    let first = grid.first().cloned();
+    let mut rest: Vec<TreeSettings> = grid.into_iter().skip(1).collect();
+    rest.shuffle(&mut rand_xoshiro::Xoshiro256Plus::seed_from_u64(seed));
+    first
+        .into_iter()
+        .chain(rest)
+        .take(t.search.max(1))
+        .collect()
 }
 
 /// A fitted candidate: margins for any rows of raw model features.
@@ -267,6 +325,11 @@ impl Fitted {
                 Fitted::Logistic(st, Logistic::fit(zb.view(), &yb, *alpha)?)
             }
             Candidate::BoostedTrees(s) => Fitted::Trees(Trees::fit(x, y, &balance_weights(y), s)?),
+            Candidate::Blend { .. } => {
+                return Err(TrainError::NotEnough(
+                    "a blend is built from its fitted members".into(),
+                ));
+            }
         })
     }
 
@@ -280,27 +343,60 @@ impl Fitted {
             Fitted::Trees(t) => t.margins(x),
         }
     }
+
+    /// The artifact's description of this fit. A logistic fit's own standardiser is the
+    /// artifact's (both are fitted on the same training rows), so only the weights travel.
+    fn spec(&self, c: &Candidate) -> ClassifierSpec {
+        match (self, c) {
+            (Fitted::Logistic(_, l), _) => ClassifierSpec::LogisticRegression(l.clone()),
+            (Fitted::Trees(tr), Candidate::BoostedTrees(s)) => ClassifierSpec::BoostedTrees {
+                settings: s.clone(),
+                booster: tr.to_value(),
+            },
+            (Fitted::Trees(tr), _) => ClassifierSpec::BoostedTrees {
+                settings: TreeSettings::default(),
+                booster: tr.to_value(),
+            },
+        }
+    }
 }
 
+/// Cross-validated figures of one candidate.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct CvResult {
     pub candidate: Candidate,
+    pub name: String,
+    /// Precision among the top `share` of each validation fold (the review capacity), by fold.
+    pub fold_precision_at_capacity: Vec<f64>,
+    /// Their mean: what selects the champion.
+    pub mean_precision_at_capacity: f64,
+    /// Average precision by fold, and the mean: the tie-break.
+    pub fold_average_precision: Vec<f64>,
+    pub mean_average_precision: f64,
     /// ROC AUC of each validation fold (folds without both classes are left out).
     pub fold_auc: Vec<f64>,
     pub mean_auc: f64,
     pub sd_auc: f64,
     /// AUC of all out-of-fold scores pooled.
     pub pooled_auc: Option<f64>,
+    /// The calibration kept, and the out-of-fold Brier score of each kind compared.
+    pub calibration: CalibrationKind,
+    pub calibration_brier: Vec<(CalibrationKind, f64)>,
+    /// Out-of-fold margins (uncalibrated log-odds).
     #[serde(skip)]
     pub oof_margins: Vec<f64>,
+    /// Out-of-fold probabilities, each calibrated without its own fold.
+    #[serde(skip)]
+    pub oof_probs: Vec<f64>,
 }
 
-fn cross_validate(
+/// Out-of-fold margins of a candidate: each fold scored by a model fitted on the others.
+fn oof_margins(
     c: &Candidate,
     x: ArrayView2<f64>,
     y: &[bool],
     folds: &[(usize, usize)],
-) -> Result<CvResult, TrainError> {
+) -> Result<Vec<f64>, TrainError> {
     let n = x.nrows();
     let fit_fold = |&(a, b): &(usize, usize)| -> Result<Vec<f64>, TrainError> {
         let train_idx: Vec<usize> = (0..a).chain(b..n).collect();
@@ -336,26 +432,171 @@ fn cross_validate(
     });
     done.sort_by_key(|(i, _)| *i);
     let mut oof = vec![0.0; n];
-    let mut fold_auc = Vec::new();
     for (i, m) in done {
         let (a, b) = folds[i];
-        let m = m?;
-        if let Some(auc) = metrics::roc_auc(&m, &y[a..b]) {
-            fold_auc.push(auc);
-        }
-        oof[a..b].copy_from_slice(&m);
+        oof[a..b].copy_from_slice(&m?);
     }
-    let k = fold_auc.len().max(1) as f64;
-    let mean = fold_auc.iter().sum::<f64>() / k;
-    let sd = (fold_auc.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (k - 1.0).max(1.0)).sqrt();
-    Ok(CvResult {
-        candidate: c.clone(),
-        pooled_auc: metrics::roc_auc(&oof, y),
-        fold_auc,
-        mean_auc: mean,
+    Ok(oof)
+}
+
+/// Calibrated out-of-fold probabilities, each fold's calibration fitted on the other folds'
+/// margins only, for each calibration kind; the kind with the lower mean Brier score is kept.
+fn cross_fitted_calibration(
+    margins: &[f64],
+    y: &[bool],
+    folds: &[(usize, usize)],
+) -> (CalibrationKind, Vec<(CalibrationKind, f64)>, Vec<f64>) {
+    let n = margins.len();
+    let mut best: Option<(CalibrationKind, f64, Vec<f64>)> = None;
+    let mut briers = Vec::new();
+    for kind in CalibrationKind::ALL {
+        let mut probs = vec![0.0; n];
+        for &(a, b) in folds {
+            let idx: Vec<usize> = (0..a).chain(b..n).collect();
+            let m: Vec<f64> = idx.iter().map(|&i| margins[i]).collect();
+            let t: Vec<bool> = idx.iter().map(|&i| y[i]).collect();
+            let cal = Calibration::fit(kind, &m, &t);
+            for i in a..b {
+                probs[i] = cal.apply(margins[i]);
+            }
+        }
+        let brier = metrics::brier(&probs, y);
+        briers.push((kind, brier));
+        if best.as_ref().is_none_or(|(_, b, _)| brier < *b) {
+            best = Some((kind, brier, probs));
+        }
+    }
+    let (kind, _, probs) = best.unwrap_or((CalibrationKind::Platt, 0.0, vec![0.5; n]));
+    (kind, briers, probs)
+}
+
+/// The number of referrals capacity allows among `n` claims: the k of precision at capacity.
+pub fn capacity_k(share: f64, n: usize) -> usize {
+    ((share * n as f64).round() as usize).clamp(1, n.max(1))
+}
+
+fn mean(v: &[f64]) -> f64 {
+    v.iter().sum::<f64>() / v.len().max(1) as f64
+}
+
+/// Fold figures of out-of-fold scores (any monotone score: margins or probabilities).
+fn score_folds(
+    candidate: Candidate,
+    scores: &[f64],
+    margins: Vec<f64>,
+    y: &[bool],
+    folds: &[(usize, usize)],
+    share: f64,
+) -> CvResult {
+    let (mut prec, mut ap, mut auc) = (Vec::new(), Vec::new(), Vec::new());
+    for &(a, b) in folds {
+        let (s, t) = (&scores[a..b], &y[a..b]);
+        let top = metrics::top_k(s, capacity_k(share, b - a));
+        prec.push(top.iter().filter(|&&i| t[i]).count() as f64 / top.len().max(1) as f64);
+        if let Some(v) = metrics::average_precision(s, t) {
+            ap.push(v);
+        }
+        if let Some(v) = metrics::roc_auc(s, t) {
+            auc.push(v);
+        }
+    }
+    let m = mean(&auc);
+    let k = auc.len().max(1) as f64;
+    let sd = (auc.iter().map(|v| (v - m).powi(2)).sum::<f64>() / (k - 1.0).max(1.0)).sqrt();
+    let (calibration, calibration_brier, oof_probs) = cross_fitted_calibration(&margins, y, folds);
+    CvResult {
+        name: candidate.name(),
+        candidate,
+        mean_precision_at_capacity: mean(&prec),
+        fold_precision_at_capacity: prec,
+        mean_average_precision: mean(&ap),
+        fold_average_precision: ap,
+        pooled_auc: metrics::roc_auc(scores, y),
+        fold_auc: auc,
+        mean_auc: m,
         sd_auc: sd,
-        oof_margins: oof,
-    })
+        calibration,
+        calibration_brier,
+        oof_margins: margins,
+        oof_probs,
+    }
+}
+
+fn cross_validate(
+    c: &Candidate,
+    x: ArrayView2<f64>,
+    y: &[bool],
+    folds: &[(usize, usize)],
+    share: f64,
+) -> Result<CvResult, TrainError> {
+    let m = oof_margins(c, x, y, folds)?;
+    Ok(score_folds(c.clone(), &m.clone(), m, y, folds, share))
+}
+
+/// The blend of finished candidates: the mean of their cross-fitted probabilities, carried as
+/// log-odds.
+fn cross_validate_blend(
+    members: &[&CvResult],
+    y: &[bool],
+    folds: &[(usize, usize)],
+    share: f64,
+) -> CvResult {
+    let n = y.len();
+    let w = 1.0 / members.len() as f64;
+    let margins: Vec<f64> = (0..n)
+        .map(|i| logit(members.iter().map(|m| w * m.oof_probs[i]).sum()))
+        .collect();
+    let candidate = Candidate::Blend {
+        members: members.iter().map(|m| m.candidate.clone()).collect(),
+    };
+    score_folds(candidate, &margins.clone(), margins, y, folds, share)
+}
+
+/// The champion: the highest mean precision at capacity; candidates within one referral per
+/// fold of it (1 / the mean k) count as tied, and among them the highest mean average
+/// precision wins. Returns its index and the sentence that says why.
+pub fn select(cv: &[CvResult], tie: f64) -> (usize, String) {
+    let best_prec = cv
+        .iter()
+        .map(|r| r.mean_precision_at_capacity)
+        .fold(f64::NEG_INFINITY, f64::max);
+    let tied: Vec<usize> = (0..cv.len())
+        .filter(|&i| cv[i].mean_precision_at_capacity >= best_prec - tie)
+        .collect();
+    let win = tied
+        .iter()
+        .copied()
+        .max_by(|&a, &b| {
+            cv[a]
+                .mean_average_precision
+                .total_cmp(&cv[b].mean_average_precision)
+                .then(b.cmp(&a)) // on an exact tie, the earlier (simpler) candidate
+        })
+        .unwrap_or(0);
+    let r = &cv[win];
+    let why = if tied.len() == 1 {
+        format!(
+            "{} won on cross-validated precision at capacity ({:.1}%; next best {:.1}%)",
+            r.name,
+            r.mean_precision_at_capacity * 100.0,
+            cv.iter()
+                .enumerate()
+                .filter(|&(i, _)| i != win)
+                .map(|(_, c)| c.mean_precision_at_capacity)
+                .fold(f64::NEG_INFINITY, f64::max)
+                .max(0.0)
+                * 100.0
+        )
+    } else {
+        format!(
+            "{} won: {} candidates were within one referral per fold of the best cross-validated precision at capacity ({:.1}%), and it had the highest average precision among them ({:.3})",
+            r.name,
+            tied.len(),
+            best_prec * 100.0,
+            r.mean_average_precision
+        )
+    };
+    (win, why)
 }
 
 /// How referrals are decided, fixed at training time.
@@ -375,7 +616,10 @@ pub struct RuleReport {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct HeldOut {
     pub model: String,
+    /// Cross-validated precision at capacity and AUC (means over folds).
+    pub cv_precision_at_capacity: f64,
     pub cv_mean_auc: f64,
+    pub calibration_kind: CalibrationKind,
     pub auc: Option<f64>,
     pub average_precision: Option<f64>,
     pub confusion: Confusion,
@@ -387,7 +631,12 @@ pub struct HeldOut {
     pub f1: Option<f64>,
     pub precision_at_capacity: Option<f64>,
     pub recall_at_capacity: Option<f64>,
+    /// Precision among the top 2% and 5% of held-out claims.
+    pub precision_at_2pct: Option<f64>,
+    pub precision_at_5pct: Option<f64>,
+    /// The reliability table and the expected calibration error on the held-out part.
     pub calibration: Vec<CalibrationBin>,
+    pub expected_calibration_error: Option<f64>,
     pub brier: f64,
 }
 
@@ -424,8 +673,14 @@ pub struct Report {
     pub model_version: String,
     pub data: DataReport,
     pub rule: RuleReport,
+    /// Features left out because their training column repeats an earlier one exactly:
+    /// `(dropped, kept)`.
+    pub duplicate_features: Vec<(String, String)>,
+    /// Every candidate's fold figures, in the order they were tried.
     pub cross_validation: Vec<CvResult>,
     pub champion: String,
+    /// Why the champion won, in one sentence.
+    pub selection: String,
     /// Held-out results, champion first.
     pub held_out: Vec<HeldOut>,
     pub outliers: OutlierReport,
@@ -442,14 +697,18 @@ pub struct OutlierReport {
     pub held_out_auc: Option<f64>,
 }
 
+/// A finalist refitted on the whole training part: its artifact description, its calibration
+/// (fitted on all its out-of-fold margins) and its capacity threshold.
 struct Final {
     name: String,
-    cv_auc: f64,
+    cv: CvIndex,
     spec: ClassifierSpec,
-    platt: Platt,
-    fitted: Fitted,
+    calibration: Calibration,
     threshold: f64,
 }
+
+#[derive(Clone, Copy)]
+struct CvIndex(usize);
 
 pub struct Trained {
     pub artifact: ModelArtifact,
@@ -475,9 +734,12 @@ fn span_days(rows: &[&TrainingRow]) -> f64 {
     }
 }
 
+/// Held-out figures of one model's calibrated probabilities.
+#[allow(clippy::too_many_arguments)]
 fn held_out(
     name: String,
-    cv_mean_auc: f64,
+    cv: &CvResult,
+    calibration_kind: CalibrationKind,
     probs: &[f64],
     referred: &[bool],
     y: &[bool],
@@ -487,9 +749,12 @@ fn held_out(
     let top = metrics::top_k(probs, capacity_k);
     let hits = top.iter().filter(|&&i| y[i]).count();
     let positives = y.iter().filter(|&&v| v).count();
+    let at = |share: f64| metrics::precision_at_k(probs, y, capacity_k_of(share, probs.len()));
     HeldOut {
         model: name,
-        cv_mean_auc,
+        cv_precision_at_capacity: cv.mean_precision_at_capacity,
+        cv_mean_auc: cv.mean_auc,
+        calibration_kind,
         auc: metrics::roc_auc(probs, y),
         average_precision: metrics::average_precision(probs, y),
         confusion,
@@ -501,14 +766,16 @@ fn held_out(
         f1: confusion.f1(),
         precision_at_capacity: (!top.is_empty()).then(|| hits as f64 / top.len() as f64),
         recall_at_capacity: (positives > 0).then(|| hits as f64 / positives as f64),
+        precision_at_2pct: at(0.02),
+        precision_at_5pct: at(0.05),
         calibration: metrics::calibration_table(probs, y, 10),
-        brier: probs
-            .iter()
-            .zip(y)
-            .map(|(p, &t)| (p - f64::from(u8::from(t))).powi(2))
-            .sum::<f64>()
-            / probs.len().max(1) as f64,
+        expected_calibration_error: metrics::expected_calibration_error(probs, y, 10),
+        brier: metrics::brier(probs, y),
     }
+}
+
+fn capacity_k_of(share: f64, n: usize) -> usize {
+    if n == 0 { 0 } else { capacity_k(share, n) }
 }
 
 /// Decide referrals under the configured rule.
@@ -519,13 +786,36 @@ pub fn refer(rule: ThresholdRule, threshold: f64, review_cost: f64, p: f64, amou
     }
 }
 
+/// Columns of `x` that repeat an earlier column exactly: `(dropped, kept)` index pairs.
+fn duplicate_columns(x: ArrayView2<f64>) -> Vec<(usize, usize)> {
+    let mut out = Vec::new();
+    for j in 0..x.ncols() {
+        if out.iter().any(|&(d, _)| d == j) {
+            continue;
+        }
+        let col = x.column(j);
+        // A constant column carries nothing either way; it stays (the standardiser maps it
+        // to 0) rather than being called a duplicate of another constant.
+        if col.iter().all(|v| Some(v) == col.first()) {
+            continue;
+        }
+        for k in j + 1..x.ncols() {
+            if !out.iter().any(|&(d, _)| d == k) && col == x.column(k) {
+                out.push((k, j));
+            }
+        }
+    }
+    out.sort_unstable();
+    out
+}
+
 /// Train on loaded rows. `progress` shows bars on stderr.
 pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trained, TrainError> {
     config
         .validate()
         .map_err(|p| TrainError::NotEnough(format!("invalid configuration: {}", p.join("; "))))?;
-    let names = config.feature_names();
-    let index = features::resolve(&names)
+    let all_names = config.feature_names();
+    let all_index = features::resolve(&all_names)
         .map_err(|m| TrainError::NotEnough(format!("unknown features {m:?}")))?;
     let t = &config.training;
     let full = featurise(&mut loaded.rows, progress);
@@ -550,23 +840,36 @@ pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trai
         )));
     }
     let cut = ((labelled.len() as f64) * (1.0 - t.test_share)).round() as usize;
-    let matrix = |idx: &[usize]| {
-        let mut m = Array2::zeros((idx.len(), index.len()));
+    let (tr, te) = labelled.split_at(cut);
+    let matrix = |idx: &[usize], cols: &[usize]| {
+        let mut m = Array2::zeros((idx.len(), cols.len()));
         for (r, &i) in idx.iter().enumerate() {
-            for (c, &f) in index.iter().enumerate() {
+            for (c, &f) in cols.iter().enumerate() {
                 m[[r, c]] = full[i][f];
             }
         }
         m
     };
+    // A feature whose training column repeats an earlier one exactly adds nothing but a
+    // second, arbitrary share of one coefficient: leave it out, and say so.
+    let dups = duplicate_columns(matrix(tr, &all_index).view());
+    let keep: Vec<usize> = (0..all_index.len())
+        .filter(|j| !dups.iter().any(|&(d, _)| d == *j))
+        .collect();
+    let index: Vec<usize> = keep.iter().map(|&j| all_index[j]).collect();
+    let names: Vec<String> = keep.iter().map(|&j| all_names[j].clone()).collect();
+    let duplicate_features = dups
+        .iter()
+        .map(|&(d, k)| (all_names[d].clone(), all_names[k].clone()))
+        .collect();
+
     let label = |i: &usize| rows[*i].outcome.and_then(Outcome::label) == Some(true);
-    let (tr, te) = labelled.split_at(cut);
     let train_rows: Vec<&TrainingRow> = tr.iter().map(|&i| &rows[i]).collect();
     let test_rows: Vec<&TrainingRow> = te.iter().map(|&i| &rows[i]).collect();
     let split = Split {
-        x_train: matrix(tr),
+        x_train: matrix(tr, &index),
         y_train: tr.iter().map(label).collect(),
-        x_test: matrix(te),
+        x_test: matrix(te, &index),
         y_test: te.iter().map(label).collect(),
         train_days: span_days(&train_rows),
         test_days: span_days(&test_rows),
@@ -582,21 +885,25 @@ pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trai
         )));
     }
 
-    // Cross-validation.
+    // The share of claims the review capacity allows, from the training part's daily volume:
+    // precision among that share of each fold selects the champion.
+    let referral = &config.referral;
+    let train_claims_per_day = split.y_train.len() as f64 / split.train_days;
+    let share = (referral.daily_capacity / train_claims_per_day).clamp(0.0, 1.0);
+
+    // Cross-validation of every candidate on the same folds.
     let folds = contiguous_folds(split.x_train.nrows(), t.folds);
     let mut candidates: Vec<Candidate> = t
         .alphas
         .iter()
         .map(|&alpha| Candidate::LogisticRegression { alpha })
         .collect();
-    let tree_settings = TreeSettings {
-        iterations: t.trees.iterations,
-        learning_rate: t.trees.learning_rate,
-        max_depth: t.trees.max_depth,
-        seed: t.seed,
-    };
     if t.trees.enabled {
-        candidates.push(Candidate::BoostedTrees(tree_settings.clone()));
+        candidates.extend(
+            tree_search(&t.trees, t.seed)
+                .into_iter()
+                .map(Candidate::BoostedTrees),
+        );
     }
     let cv_bar = bar(candidates.len() as u64, "cross-val", progress);
     let mut cv = Vec::new();
@@ -607,55 +914,101 @@ pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trai
             split.x_train.view(),
             &split.y_train,
             &folds,
+            share,
         )?);
         cv_bar.inc(1);
     }
     cv_bar.finish_and_clear();
-
-    let best_of = |pred: &dyn Fn(&Candidate) -> bool| {
-        cv.iter()
-            .filter(|r| pred(&r.candidate))
-            .max_by(|a, b| a.mean_auc.total_cmp(&b.mean_auc))
+    let mean_k = folds
+        .iter()
+        .map(|&(a, b)| capacity_k(share, b - a) as f64)
+        .sum::<f64>()
+        / folds.len().max(1) as f64;
+    let tie = 1.0 / mean_k.max(1.0);
+    let best_of = |pred: &dyn Fn(&Candidate) -> bool| -> Option<usize> {
+        let idx: Vec<usize> = (0..cv.len()).filter(|&i| pred(&cv[i].candidate)).collect();
+        let sub: Vec<CvResult> = idx.iter().map(|&i| cv[i].clone()).collect();
+        (!sub.is_empty()).then(|| idx[select(&sub, tie).0])
     };
-    let best_lr = best_of(&|c| matches!(c, Candidate::LogisticRegression { .. }))
+    let best_lr = best_of(&Candidate::is_logistic)
         .ok_or_else(|| TrainError::NotEnough("no logistic regression candidate".into()))?;
-    let best_trees = best_of(&|c| matches!(c, Candidate::BoostedTrees(_)));
-    // Trees must beat the simpler, more readable model, not tie it.
-    let champion_is_trees = best_trees.is_some_and(|b| b.mean_auc > best_lr.mean_auc + 0.005);
+    let best_trees = best_of(&Candidate::is_trees);
+    let mut blend = None;
+    if let (true, Some(bt)) = (t.blend, best_trees) {
+        cv.push(cross_validate_blend(
+            &[&cv[best_lr], &cv[bt]],
+            &split.y_train,
+            &folds,
+            share,
+        ));
+        blend = Some(cv.len() - 1);
+    }
+    let (champion, selection) = select(&cv, tie);
 
-    // Final fits on the whole training part, each calibrated on its own out-of-fold margins
-    // and given its own capacity threshold from its out-of-fold probabilities, so the
-    // challenger is judged under the same rule as the champion, not under the champion's cut.
-    let referral = &config.referral;
-    let train_claims_per_day = split.y_train.len() as f64 / split.train_days;
-    let share = (referral.daily_capacity / train_claims_per_day).clamp(0.0, 1.0);
+    // Final fits on the whole training part. Each finalist is calibrated on its own
+    // out-of-fold margins and gets its own capacity threshold from its cross-fitted
+    // out-of-fold probabilities, so every model is judged under the same rule.
     let standardiser = Standardiser::fit(split.x_train.view());
     let z_train = standardiser.apply(split.x_train.view());
-    let mut finals: Vec<Final> = Vec::new();
-    for r in std::iter::once(best_lr).chain(best_trees) {
-        let platt = Platt::fit(&r.oof_margins, &split.y_train);
-        let fitted = Fitted::fit(&r.candidate, split.x_train.view(), &split.y_train)?;
-        let spec = match (&fitted, &r.candidate) {
-            (Fitted::Logistic(_, l), _) => ClassifierSpec::LogisticRegression(l.clone()),
-            (Fitted::Trees(tr), Candidate::BoostedTrees(s)) => ClassifierSpec::BoostedTrees {
-                settings: s.clone(),
-                booster: tr.to_value(),
-            },
-            (Fitted::Trees(_), Candidate::LogisticRegression { .. }) => unreachable!(),
-        };
-        let mut oof: Vec<f64> = r.oof_margins.iter().map(|&m| platt.apply(m)).collect();
-        oof.sort_by(f64::total_cmp);
-        finals.push(Final {
-            name: r.candidate.name(),
-            cv_auc: r.mean_auc,
-            spec,
-            platt,
-            fitted,
-            threshold: crate::monitor::drift::quantile_sorted(&oof, 1.0 - share),
-        });
+    let mut finalists: Vec<usize> = vec![champion];
+    for i in [Some(best_lr), best_trees, blend].into_iter().flatten() {
+        if !finalists.contains(&i) {
+            finalists.push(i);
+        }
     }
-    if champion_is_trees {
-        finals.swap(0, 1);
+    let mut fitted_members: std::collections::HashMap<usize, (ClassifierSpec, Calibration)> =
+        std::collections::HashMap::new();
+    let mut fit_single = |i: usize| -> Result<(ClassifierSpec, Calibration), TrainError> {
+        if let Some(f) = fitted_members.get(&i) {
+            return Ok(f.clone());
+        }
+        let r = &cv[i];
+        let fitted = Fitted::fit(&r.candidate, split.x_train.view(), &split.y_train)?;
+        let out = (
+            fitted.spec(&r.candidate),
+            Calibration::fit(r.calibration, &r.oof_margins, &split.y_train),
+        );
+        fitted_members.insert(i, out.clone());
+        Ok(out)
+    };
+    let threshold_of = |r: &CvResult| {
+        let mut oof = r.oof_probs.clone();
+        oof.sort_by(f64::total_cmp);
+        crate::monitor::drift::quantile_sorted(&oof, 1.0 - share)
+    };
+    let mut finals: Vec<Final> = Vec::new();
+    for &i in &finalists {
+        let r = &cv[i];
+        let (spec, calibration) = match &r.candidate {
+            Candidate::Blend { members } => {
+                let member_idx: Vec<usize> = members
+                    .iter()
+                    .filter_map(|m| cv.iter().position(|c| &c.candidate == m))
+                    .collect();
+                let w = 1.0 / member_idx.len().max(1) as f64;
+                let mut parts = Vec::new();
+                for m in member_idx {
+                    let (classifier, calibration) = fit_single(m)?;
+                    parts.push(BlendMember {
+                        classifier,
+                        calibration,
+                        weight: w,
+                    });
+                }
+                (
+                    ClassifierSpec::Blend { members: parts },
+                    Calibration::fit(r.calibration, &r.oof_margins, &split.y_train),
+                )
+            }
+            _ => fit_single(i)?,
+        };
+        finals.push(Final {
+            name: r.name.clone(),
+            cv: CvIndex(i),
+            spec,
+            calibration,
+            threshold: threshold_of(r),
+        });
     }
     let threshold = finals[0].threshold;
 
@@ -686,20 +1039,54 @@ pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trai
     ks.n_runs = 3;
     let outliers = OutlierModel::fit(z_train.view(), &ks)?;
 
-    // Held-out evaluation.
+    // Each finalist as an artifact, scored on the held-out part through the same code the
+    // service runs.
     let amounts: Vec<f64> = split
         .test_rows
         .iter()
         .map(|r| r.claim.claimed_amount)
         .collect();
+    let placeholder = Baseline::from_sample(&[0.0], DEFAULT_BINS);
+    let artifact_of = |f: &Final, baselines: Baselines| {
+        let mut a = ModelArtifact {
+            format: ARTIFACT_FORMAT.into(),
+            format_version: ARTIFACT_FORMAT_VERSION,
+            version: String::new(),
+            features: names.clone(),
+            standardiser: standardiser.clone(),
+            classifier: f.spec.clone(),
+            calibration: f.calibration.clone(),
+            threshold: f.threshold,
+            outliers: outliers.clone(),
+            baselines,
+            training: TrainingInfo {
+                created_at: chrono::Utc::now().to_rfc3339(),
+                data_from: String::new(),
+                data_to: String::new(),
+                train_rows: 0,
+                train_positives: 0,
+                test_rows: 0,
+                test_positives: 0,
+                metrics: serde_json::Value::Null,
+            },
+        };
+        a.seal();
+        a
+    };
+    let blank_baselines = || Baselines {
+        features: vec![placeholder.clone(); names.len()],
+        probability: placeholder.clone(),
+        outlier_score: placeholder.clone(),
+    };
     let mut held = Vec::new();
     let mut champion_test_probs = Vec::new();
+    let mut champion_train_probs = Vec::new();
     for (i, f) in finals.iter().enumerate() {
-        let probs: Vec<f64> = f
-            .fitted
+        let model = Model::new(artifact_of(f, blank_baselines()))?;
+        let probs: Vec<f64> = model
             .margins(split.x_test.view())
             .into_iter()
-            .map(|m| f.platt.apply(m))
+            .map(|m| model.calibrated(m))
             .collect();
         let referred: Vec<bool> = probs
             .iter()
@@ -708,7 +1095,8 @@ pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trai
             .collect();
         held.push(held_out(
             f.name.clone(),
-            f.cv_auc,
+            &cv[f.cv.0],
+            f.calibration.kind(),
             &probs,
             &referred,
             &split.y_test,
@@ -716,31 +1104,21 @@ pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trai
         ));
         if i == 0 {
             champion_test_probs = probs;
+            champion_train_probs = model
+                .margins(split.x_train.view())
+                .into_iter()
+                .map(|m| model.calibrated(m))
+                .collect();
         }
     }
     let z_test = standardiser.apply(split.x_test.view());
     let outlier_test: Vec<f64> = z_test.outer_iter().map(|r| outliers.score(r).1).collect();
 
-    let lr_coef = finals
-        .iter()
-        .find_map(|f| match &f.spec {
-            ClassifierSpec::LogisticRegression(l) => Some(l.coef.clone()),
-            ClassifierSpec::BoostedTrees { .. } => None,
-        })
-        .unwrap_or_default();
+    let lr_coef = match &fit_single(best_lr)?.0 {
+        ClassifierSpec::LogisticRegression(l) => l.coef.clone(),
+        _ => Vec::new(),
+    };
     // Baselines for drift: the training part's features and the champion's scores on it.
-    let Final {
-        name: champ_name,
-        spec: champ_spec,
-        platt: champ_platt,
-        fitted: champ_fitted,
-        ..
-    } = finals.swap_remove(0);
-    let train_probs: Vec<f64> = champ_fitted
-        .margins(split.x_train.view())
-        .into_iter()
-        .map(|m| champ_platt.apply(m))
-        .collect();
     let train_outlier: Vec<f64> = z_train.outer_iter().map(|r| outliers.score(r).1).collect();
     let baselines = Baselines {
         features: split
@@ -748,7 +1126,7 @@ pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trai
             .axis_iter(Axis(1))
             .map(|col| Baseline::from_sample(&col.to_vec(), DEFAULT_BINS))
             .collect(),
-        probability: Baseline::from_sample(&train_probs, DEFAULT_BINS),
+        probability: Baseline::from_sample(&champion_train_probs, DEFAULT_BINS),
         outlier_score: Baseline::from_sample(&train_outlier, DEFAULT_BINS),
     };
 
@@ -781,27 +1159,17 @@ pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trai
         names.iter().cloned().zip(lr_coef).collect();
     logistic_coefficients.sort_by(|a, b| b.1.abs().total_cmp(&a.1.abs()));
 
-    let mut artifact = ModelArtifact {
-        format: ARTIFACT_FORMAT.into(),
-        format_version: ARTIFACT_FORMAT_VERSION,
-        version: String::new(),
-        features: names.clone(),
-        standardiser,
-        classifier: champ_spec,
-        calibration: champ_platt,
-        threshold,
-        outliers,
-        baselines,
-        training: TrainingInfo {
-            created_at: chrono::Utc::now().to_rfc3339(),
-            data_from: data.from.clone(),
-            data_to: data.to.clone(),
-            train_rows: data.train_rows,
-            train_positives: data.train_positives,
-            test_rows: data.test_rows,
-            test_positives: data.test_positives,
-            metrics: serde_json::to_value(&held).unwrap_or_default(),
-        },
+    let champ = finals.swap_remove(0);
+    let mut artifact = artifact_of(&champ, baselines);
+    artifact.training = TrainingInfo {
+        created_at: chrono::Utc::now().to_rfc3339(),
+        data_from: data.from.clone(),
+        data_to: data.to.clone(),
+        train_rows: data.train_rows,
+        train_positives: data.train_positives,
+        test_rows: data.test_rows,
+        test_positives: data.test_positives,
+        metrics: serde_json::to_value(&held).unwrap_or_default(),
     };
     artifact.seal();
 
@@ -827,8 +1195,10 @@ pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trai
         model_version: artifact.version.clone(),
         data,
         rule,
+        duplicate_features,
         cross_validation: cv,
-        champion: champ_name,
+        champion: champ.name,
+        selection,
         held_out: held,
         outliers: outlier_report,
         logistic_coefficients,

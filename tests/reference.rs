@@ -6,7 +6,7 @@
 use ndarray::Array2;
 use serde_json::Value;
 use weir::metrics::{self, Confusion};
-use weir::model::{Logistic, Platt, sigmoid};
+use weir::model::{Isotonic, Logistic, Platt, sigmoid};
 use weir::monitor::drift;
 use weir::outliers::{KMeansSettings, OutlierModel};
 
@@ -293,4 +293,43 @@ fn wilson_interval_matches_scipy() {
             &format!("wilson high {k}/{n}"),
         );
     }
+}
+
+/// Source: scikit-learn `IsotonicRegression(out_of_bounds="clip")` fitted on the standardised
+/// mean radius of breast cancer (bundled in scikit-learn), which has ties; compared at the
+/// training points and at query points between, on and beyond the knots.
+#[test]
+fn isotonic_calibration_matches_scikit_learn() {
+    let f = fixture("isotonic_breast_cancer.json");
+    let iso = Isotonic::fit(&floats(&f["x"]), &bools(&f["y"]));
+    let q = floats(&f["queries"]);
+    let want = floats(&f["predicted"]);
+    for (i, (&x, &w)) in q.iter().zip(&want).enumerate() {
+        close(
+            iso.apply(x),
+            w,
+            1e-12,
+            &format!("isotonic at query {i} ({x})"),
+        );
+    }
+    let x = floats(&f["x"]);
+    let fitted = floats(&f["fitted"]);
+    for (i, (&v, &w)) in x.iter().zip(&fitted).enumerate() {
+        close(iso.apply(v), w, 1e-12, &format!("isotonic fitted[{i}]"));
+    }
+}
+
+/// Source: a direct NumPy computation of expected calibration error (ten equal-width bins,
+/// |mean predicted − observed rate| weighted by the bin's share) on scikit-learn's isotonic
+/// fit above.
+#[test]
+fn expected_calibration_error_matches_a_direct_computation() {
+    let f = fixture("isotonic_breast_cancer.json");
+    let ece = metrics::expected_calibration_error(&floats(&f["fitted"]), &bools(&f["y"]), 10);
+    close(
+        ece.unwrap(),
+        f["ece_of_fitted"].as_f64().unwrap(),
+        1e-12,
+        "ECE",
+    );
 }

@@ -81,6 +81,10 @@ impl Role {
 
 /// Entity kind of a catastrophe event in history keys.
 pub const CATASTROPHE_KIND: &str = "catastrophe";
+/// Entity kind of a region in history keys.
+pub const REGION_KIND: &str = "region";
+/// History kinds that give context (a surge) and link no claims.
+pub const CONTEXT_KINDS: [&str; 2] = [REGION_KIND, CATASTROPHE_KIND];
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Party {
@@ -472,18 +476,33 @@ impl Claim {
         self.reported_at.timestamp()
     }
 
-    /// The ids this claim contributes to history, as `kind:id` keys. A catastrophe event is
-    /// one of them (so features can tell a surge's claims apart), but it links no claims.
+    /// The ids this claim contributes to history, as `kind:id` keys: the claimant, policy,
+    /// address and parties, which link claims, and the context kinds ([`CONTEXT_KINDS`]: the
+    /// region and the catastrophe event), which let features see a surge but link nothing.
     pub fn entity_keys(&self) -> Vec<String> {
+        let mut keys = self.lock_keys();
+        if let Some(r) = &self.region {
+            keys.push(format!("{REGION_KIND}:{r}"));
+        }
+        if let Some(c) = &self.catastrophe_code {
+            keys.push(format!("{CATASTROPHE_KIND}:{c}"));
+        }
+        keys.sort();
+        keys.dedup();
+        keys
+    }
+
+    /// The keys a decision locks: the entities that link claims. Context kinds are left out,
+    /// so that every claim of a region is not decided one at a time; two claims of one region
+    /// decided at the same instant may then each miss the other in the region's count (a
+    /// count of hundreds, read only for surges).
+    pub fn lock_keys(&self) -> Vec<String> {
         let mut keys = vec![
             format!("claimant:{}", self.claimant_id),
             format!("policy:{}", self.policy_id),
         ];
         if let Some(a) = &self.address_id {
             keys.push(format!("address:{a}"));
-        }
-        if let Some(c) = &self.catastrophe_code {
-            keys.push(format!("{CATASTROPHE_KIND}:{c}"));
         }
         for p in &self.parties {
             keys.push(format!("{}:{}", p.role.as_str(), p.id));
@@ -492,6 +511,14 @@ impl Claim {
         keys.dedup();
         keys
     }
+}
+
+/// Whether a history key is of a context kind (region, catastrophe event).
+pub fn is_context_key(key: &str) -> bool {
+    CONTEXT_KINDS.iter().any(|k| {
+        key.strip_prefix(k)
+            .is_some_and(|rest| rest.starts_with(':'))
+    })
 }
 
 #[derive(Default)]

@@ -15,6 +15,17 @@ use std::collections::HashMap;
 pub const DAY: i64 = 86_400;
 pub const SHORT_WINDOW_DAYS: i64 = 30;
 pub const LONG_WINDOW_DAYS: i64 = 365;
+/// Days of a region's history features read: its last two days against the 28 before.
+pub const REGION_WINDOW_DAYS: i64 = 30;
+const SURGE_RECENT_DAYS: i64 = 2;
+/// A region receiving claims at this many times its usual rate is in a surge (a storm, a
+/// flood): context in which firms are busy for good reason. Common practice, no source: a
+/// threefold rise over two days is far outside the day-to-day variation of a region's volume
+/// (a Poisson count of 9 a day rarely triples), yet a weather event easily exceeds it.
+pub const SURGE_RATIO: f64 = 3.0;
+/// Claims a region needs in the 28 days before for its surge ratio to mean anything (common
+/// practice, no source: below about ten, one busy day doubles the count by chance).
+const SURGE_MIN_BASELINE: f64 = 10.0;
 
 /// One earlier claim as seen from an entity (claimant, policy, party, address).
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -255,6 +266,10 @@ catalogue! {
         };
     Catastrophe = "catastrophe_event", Never, "1 if the claim is tagged with a catastrophe event code",
         |_, _| "filed under a catastrophe event".to_string();
+    RegionSurge = "region_surge_ratio", Never, "claims reported in the claim's region in the last 2 days against its usual 2 days over the 28 days before ((recent + 1) / (usual + 1); 1 while the region has fewer than 10 claims in those 28 days)",
+        |v, _| format!("its region is receiving claims at {v:.1} times the usual rate");
+    SurgeContext = "surge_context", Never, "1 if the claim is tagged with a catastrophe event or its region is in a surge (region_surge_ratio at least 3): firms' bursts then count only claims outside the event, or not at all",
+        |_, _| "filed during a surge of claims (a catastrophe event or a regional surge): context, not suspicion".to_string();
     ClaimantShort = "claimant_claims_30d", High, "earlier claims by this claimant in 30 days",
         |v, _| format!("claimant made {} in the last 30 days", others(v, "claim"));
     ClaimantLong = "claimant_claims_365d", High, "earlier claims by this claimant in 365 days",
@@ -285,6 +300,8 @@ catalogue! {
         |v, _| format!("address shared with {} in the last year", others(v, "claimant"));
     LinkedLong = "linked_claimants_365d", High, "distinct other claimants sharing a bank account, witness, third party or address with this claim in 365 days",
         |v, _| format!("linked through a shared bank account, witness, third party or address to {} in the last year", others(v, "claimant"));
+    LinkedAmount = "linked_log_amount_365d", Never, "log of 1 + the amounts of other claimants' claims in 365 days linked to this one through a shared bank account, witness, third party or address, or through two of its parties named together: the exposure a review of this claim opens",
+        |v, _| format!("linked claims worth {} in the last year", fmt_amount(v.exp_m1()));
     LinkedShort = "linked_claimants_30d", High, "as linked_claimants_365d, in the last 30 days",
         |v, _| format!("linked through a shared bank account, witness, third party or address to {} in the last 30 days", others(v, "claimant"));
     PairClaimants = "party_pair_claimants_365d", High, "distinct other claimants on claims naming two of this claim's parties together in 365 days (highest over pairs)",
@@ -311,6 +328,34 @@ pub fn index_of(name: &str) -> Option<usize> {
 
 pub fn names() -> Vec<&'static str> {
     CATALOGUE.iter().map(|d| d.name).collect()
+}
+
+/// The amounts of other claimants' claims linked to this one (see `linked_log_amount_365d`).
+pub fn linked_amount(full: &[f64]) -> f64 {
+    full[F::LinkedAmount as usize].exp_m1()
+}
+
+/// Features that say one thing share a family, named by its first member's index: a claim
+/// gets at most one reason from each, and a rule testing one member stands for the family.
+pub fn family(index: usize) -> usize {
+    const FAMILIES: &[&[F]] = &[
+        &[
+            F::LinkedLong,
+            F::LinkedShort,
+            F::PayeeClaimants,
+            F::WitnessClaimants,
+            F::ThirdPartyClaimants,
+            F::AddressClaimants,
+        ],
+        &[F::DaysPolicyToLoss, F::NewPolicyLoss],
+        &[F::DaysLossToReport, F::LateReport],
+        &[F::ClaimantShort, F::ClaimantLong, F::PolicyLong],
+        &[F::RoundAmount, F::BelowRound],
+    ];
+    FAMILIES
+        .iter()
+        .find(|fam| fam.iter().any(|f| *f as usize == index))
+        .map_or(index, |fam| fam[0] as usize)
 }
 
 /// The smallest round figure (1, 2, 2.5 or 5 times a power of ten, 1,000 or more) above `a`.
@@ -351,6 +396,15 @@ pub fn reasons(
         })
         .collect();
     order.sort_by(|&a, &b| contrib[b].total_cmp(&contrib[a]));
+    // One reason per family: "linked to 9 claimants this year" and "to 5 this month" say
+    // one thing.
+    let mut families = Vec::new();
+    order.retain(|&i| {
+        let f = family(index[i]);
+        let new = !families.contains(&f);
+        families.push(f);
+        new
+    });
     order
         .into_iter()
         .take(max)
@@ -459,11 +513,35 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
         storm = w.events.iter().map(|e| e.claim).collect();
         storm.sort_unstable();
     }
+    if let Some(region) = &claim.region {
+        load(&mut w, crate::claim::REGION_KIND, region);
+        let recent_from = t - SURGE_RECENT_DAYS * DAY;
+        let past_from = t - REGION_WINDOW_DAYS * DAY;
+        let recent = w.events.iter().filter(|e| e.at >= recent_from).count() as f64;
+        let past = w
+            .events
+            .iter()
+            .filter(|e| e.at >= past_from && e.at < recent_from)
+            .count() as f64;
+        let usual =
+            past * SURGE_RECENT_DAYS as f64 / (REGION_WINDOW_DAYS - SURGE_RECENT_DAYS) as f64;
+        // Without a baseline (a new region, the start of the history) there is no surge to
+        // see: a handful of claims against none is not one.
+        v[F::RegionSurge as usize] = if past >= SURGE_MIN_BASELINE {
+            (recent + 1.0) / (usual + 1.0)
+        } else {
+            1.0
+        };
+    }
+    let regional_surge = v[F::RegionSurge as usize] >= SURGE_RATIO;
+    v[F::SurgeContext as usize] = b(regional_surge || claim.catastrophe_code.is_some());
 
     // Per party: its window, kept for the pair, similarity and typical-amount features.
     let mut windows: Vec<(Role, Window)> = Vec::with_capacity(claim.parties.len());
     let mut linked_long: Vec<u64> = Vec::new();
     let mut linked_short: Vec<u64> = Vec::new();
+    // Other claimants' claims linked to this one, with their amounts (the exposure).
+    let mut linked_claims: Vec<(u64, f64)> = Vec::new();
     for p in &claim.parties {
         let mut pw = Window::default();
         load(&mut pw, p.role.as_str(), &p.id);
@@ -481,7 +559,13 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
             let past = pw.claimants(me, &mut scratch, |e| e.at < short_from && not_storm(e));
             let usual =
                 past * SHORT_WINDOW_DAYS as f64 / (LONG_WINDOW_DAYS - SHORT_WINDOW_DAYS) as f64;
-            let burst = (recent + 1.0) / (usual + 1.0);
+            // In a regional surge without an event code, a firm's burst cannot be told from
+            // the surge's: it counts as no burst at all.
+            let burst = if regional_surge && storm.is_empty() {
+                1.0
+            } else {
+                (recent + 1.0) / (usual + 1.0)
+            };
             if burst > v[burst_i as usize] {
                 v[burst_i as usize] = burst;
             }
@@ -495,6 +579,7 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
             v[recent_i as usize] = v[recent_i as usize].max(c);
             for e in pw.events.iter().filter(|e| e.claimant != me) {
                 linked_long.push(e.claimant);
+                linked_claims.push((e.claim, e.amount));
                 if e.at >= short_from {
                     linked_short.push(e.claimant);
                 }
@@ -507,6 +592,7 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
         v[F::AddressClaimants as usize] = w.claimants(me, &mut scratch, |_| true);
         for e in w.events.iter().filter(|e| e.claimant != me) {
             linked_long.push(e.claimant);
+            linked_claims.push((e.claim, e.amount));
             if e.at >= short_from {
                 linked_short.push(e.claimant);
             }
@@ -520,12 +606,16 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
     v[F::LinkedShort as usize] = linked_short.len() as f64;
 
     // Parties named together on other claimants' claims.
-    let mut by_claim: Vec<Vec<(u64, u64)>> = windows
+    let mut by_claim: Vec<Vec<(u64, u64, f64)>> = windows
         .iter()
         .map(|(_, pw)| {
-            let mut c: Vec<(u64, u64)> = pw.events.iter().map(|e| (e.claim, e.claimant)).collect();
-            c.sort_unstable();
-            c.dedup();
+            let mut c: Vec<(u64, u64, f64)> = pw
+                .events
+                .iter()
+                .map(|e| (e.claim, e.claimant, e.amount))
+                .collect();
+            c.sort_by_key(|e| e.0);
+            c.dedup_by_key(|e| e.0);
             c
         })
         .collect();
@@ -547,6 +637,7 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
                     std::cmp::Ordering::Equal => {
                         if a[x].1 != me {
                             scratch.push(a[x].1);
+                            linked_claims.push((a[x].0, a[x].2));
                         }
                         x += 1;
                         y += 1;
@@ -560,6 +651,9 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
     }
     by_claim.clear();
     v[F::PairClaimants as usize] = best_pair;
+    linked_claims.sort_by_key(|e| e.0);
+    linked_claims.dedup_by_key(|e| e.0);
+    v[F::LinkedAmount as usize] = linked_claims.iter().map(|e| e.1).sum::<f64>().ln_1p();
 
     // Amounts against the same parties' earlier claims.
     let mut best_share = 0.0f64;

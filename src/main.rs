@@ -6,6 +6,7 @@ use clap::{Parser, Subcommand};
 use std::io::{BufReader, BufWriter, IsTerminal, Write};
 use std::path::PathBuf;
 use weir::config::Config;
+use weir::demo_data::World;
 use weir::train::{self, BadLines};
 
 #[derive(Parser)]
@@ -97,6 +98,9 @@ enum Command {
         claims: usize,
         #[arg(long, default_value_t = 1)]
         seed: u64,
+        /// Which invented world: fernlow (the demo's) or osterby (written only to evaluate).
+        #[arg(long, value_enum, default_value_t = World::Fernlow)]
+        world: World,
     },
     /// Train a model on adjudicated claims and report how good it is on held-out data.
     Train {
@@ -115,6 +119,14 @@ enum Command {
         /// What to do with a line that cannot be used.
         #[arg(long, value_enum, default_value_t = BadLines::Refuse)]
         bad_lines: BadLines,
+        /// Also score the later part of this second file of claims (another book of
+        /// business the model was not shaped on) and report how it fares there.
+        #[arg(long)]
+        also_evaluate: Option<PathBuf>,
+        /// claim_id,mechanism file for --also-evaluate (as demo-data writes): adds recall by
+        /// mechanism and the surge's share of the investigate queue.
+        #[arg(long, requires = "also_evaluate")]
+        truth: Option<PathBuf>,
     },
     /// Evaluate a score file (columns score,label) and print one JSON object.
     Evaluate {
@@ -262,13 +274,20 @@ fn run(cli: Cli) -> Result<()> {
                 weir::server::run(svc, settings, listener, weir::server::shutdown_signal()).await
             })
         }
-        Command::DemoData { out, claims, seed } => demo_data(&out, claims, seed),
+        Command::DemoData {
+            out,
+            claims,
+            seed,
+            world,
+        } => demo_data(&out, claims, seed, world),
         Command::Train {
             data,
             out,
             report,
             config,
             bad_lines,
+            also_evaluate,
+            truth,
         } => {
             let config = match config {
                 Some(p) => Config::read(&p)?,
@@ -283,7 +302,15 @@ fn run(cli: Cli) -> Result<()> {
                     eprintln!("  line {}: {}", p.line, p.problem);
                 }
             }
-            let trained = train::train(loaded, &config, std::io::stderr().is_terminal())?;
+            let mut trained = train::train(loaded, &config, std::io::stderr().is_terminal())?;
+            if let Some(other) = &also_evaluate {
+                trained.report.also_evaluated = Some(also_evaluate_file(
+                    &trained,
+                    other,
+                    truth.as_deref(),
+                    &config,
+                )?);
+            }
             std::fs::write(&out, trained.artifact.to_json())
                 .with_context(|| format!("cannot write {}", out.display()))?;
             if let Some(r) = report {
@@ -316,9 +343,43 @@ fn run(cli: Cli) -> Result<()> {
     }
 }
 
-fn demo_data(out: &std::path::Path, n: usize, seed: u64) -> Result<()> {
+/// The shipped rule file, used for `--also-evaluate` when the configured one is absent.
+const SHIPPED_RULES: &str = include_str!("../config/rules.toml");
+
+fn also_evaluate_file(
+    trained: &train::Trained,
+    file: &std::path::Path,
+    truth: Option<&std::path::Path>,
+    config: &Config,
+) -> Result<weir::elsewhere::Elsewhere> {
+    let f = std::fs::File::open(file).with_context(|| format!("cannot open {}", file.display()))?;
+    let loaded = train::load(BufReader::new(f), BadLines::Refuse)
+        .with_context(|| format!("in {}", file.display()))?;
+    let truth = match truth {
+        Some(p) => Some(weir::elsewhere::read_truth(
+            &std::fs::read_to_string(p).with_context(|| format!("cannot read {}", p.display()))?,
+        )),
+        None => None,
+    };
+    let rules = if config.paths.rules.exists() {
+        weir::rules::RuleSet::read(&config.paths.rules)?
+    } else {
+        weir::rules::RuleSet::from_toml(SHIPPED_RULES, "shipped config/rules.toml")?
+    };
+    Ok(weir::elsewhere::evaluate(
+        &trained.artifact,
+        loaded,
+        &file.display().to_string(),
+        config.training.test_share,
+        truth.as_ref(),
+        &rules,
+        &config.routing,
+    )?)
+}
+
+fn demo_data(out: &std::path::Path, n: usize, seed: u64, world: World) -> Result<()> {
     std::fs::create_dir_all(out).with_context(|| format!("cannot create {}", out.display()))?;
-    let claims = weir::demo_data::generate(n, seed);
+    let claims = world.generate(n, seed);
     let path = out.join("claims.ndjson");
     let mut w = BufWriter::new(std::fs::File::create(&path)?);
     for c in &claims {
@@ -342,8 +403,9 @@ fn demo_data(out: &std::path::Path, n: usize, seed: u64) -> Result<()> {
         *by.entry(c.mechanism.as_str()).or_insert(0usize) += 1;
     }
     println!(
-        "wrote {} claims of the invented Fernlow Mutual scenario to {} (seed {seed})",
+        "wrote {} claims of the invented {} scenario to {} (seed {seed})",
         claims.len(),
+        world.insurer(),
         path.display()
     );
     for (m, k) in by {
@@ -426,6 +488,35 @@ fn print_summary(r: &train::Report, out: &std::path::Path) {
         r.model_version,
         num(r.outliers.held_out_auc)
     );
+    if let Some(e) = &r.also_evaluated {
+        println!(
+            "\nalso evaluated on the later part of {} ({} claims from {}, {} labelled, {} referral-worthy):",
+            e.file, e.claims, e.from, e.labelled, e.positives
+        );
+        println!(
+            "  AUC {}  AP {}  prec@2% {}  prec@5% {}  ECE {}",
+            num(e.auc),
+            num(e.average_precision),
+            pct(e.precision_at_2pct),
+            pct(e.precision_at_5pct),
+            num(e.expected_calibration_error)
+        );
+        for m in &e.mechanisms {
+            println!(
+                "  {:<18} {:>4} of {:>4} referral-worthy claims in the top 5%",
+                m.mechanism, m.in_top_5pct, m.positives
+            );
+        }
+        let q: Vec<String> = e.queues.iter().map(|(k, v)| format!("{k} {v}")).collect();
+        println!("  queues: {}", q.join(", "));
+        if let (Some(a), Some(b)) = (e.surge_share_of_claims, e.surge_share_of_investigate) {
+            println!(
+                "  surge claims: {} of all claims, {} of the investigate queue",
+                pct(Some(a)),
+                pct(Some(b))
+            );
+        }
+    }
     println!("\nhighest-scored held-out claims (referrals for review, not findings):");
     for t in r.top_referrals.iter().take(5) {
         println!(

@@ -890,16 +890,22 @@ impl Backend for PgStore {
     }
 
     fn history_view<'a>(&'a self, claim: &Claim) -> Result<Box<dyn HistoryView + 'a>, StoreError> {
-        let keys = claim.entity_keys();
+        // A region's list is long and features read only its last weeks: fetch those alone.
+        let (regions, keys): (Vec<String>, Vec<String>) = claim
+            .entity_keys()
+            .into_iter()
+            .partition(|k| k.starts_with(crate::claim::REGION_KIND));
         let t = claim.event_time();
         let from = t - LONG_WINDOW_DAYS * DAY;
+        let region_from = t - crate::features::REGION_WINDOW_DAYS * DAY;
         self.with(|c| {
             let mut map: HashMap<String, Vec<HistoryEvent>> = HashMap::new();
             for r in c.query(
                 "SELECT entity, at, claim_hash, claimant, amount FROM history
-                 WHERE entity = ANY($1) AND at >= $2 AND at < $3
+                 WHERE ((entity = ANY($1) AND at >= $2) OR (entity = ANY($4) AND at >= $5))
+                   AND at < $3
                  ORDER BY entity, at, claim_hash",
-                &[&keys, &from, &t],
+                &[&keys, &from, &t, &regions, &region_from],
             )? {
                 map.entry(r.get(0)).or_default().push(HistoryEvent {
                     at: r.get(1),

@@ -19,7 +19,11 @@
 //!    `routing.audit_share`, drawn from a hash of its id (stable across replays, independent
 //!    of its features), so precision and recall can be estimated without selection bias.
 //!
-//! Priority = expected value (probability × claimed amount − review cost) + rule points.
+//! Priority = (probability × exposure − review cost) × the fired rules' `priority_factor`s,
+//! plus their `add_priority`, in currency units. Exposure is the claimed amount plus the amounts
+//! of other claimants' claims linked to it (features `linked_log_amount_365d`), so a ring's
+//! members count with the ring's exposure. Audit claims have priority 0: they were drawn at
+//! random, and their order means nothing.
 
 use crate::features::{self, FeatureVector};
 use serde::{Deserialize, Serialize};
@@ -121,10 +125,16 @@ struct RawRule {
     any: Vec<RawCondition>,
     #[serde(default)]
     add_priority: f64,
+    #[serde(default = "one")]
+    priority_factor: f64,
     #[serde(default)]
     queue: Option<toml::Spanned<String>>,
     #[serde(default)]
     exempt: bool,
+}
+
+fn one() -> f64 {
+    1.0
 }
 
 #[derive(Debug, Clone, PartialEq, Deserialize)]
@@ -158,7 +168,10 @@ pub struct Rule {
     pub reason: String,
     all: Vec<Condition>,
     any: Vec<Condition>,
+    /// Currency units added to the priority.
     pub add_priority: f64,
+    /// Multiplies the expected saving in the priority (1 leaves it).
+    pub priority_factor: f64,
     pub queue: Option<Queue>,
     pub exempt: bool,
 }
@@ -242,6 +255,17 @@ impl RuleSet {
                     problem: format!("rule {id:?}: add_priority must be a finite number"),
                 });
             }
+            if !(r.priority_factor.is_finite()
+                && r.priority_factor > 0.0
+                && r.priority_factor <= 100.0)
+            {
+                problems.push(RuleProblem {
+                    line,
+                    problem: format!(
+                        "rule {id:?}: priority_factor must be a number above 0 and at most 100"
+                    ),
+                });
+            }
             let mut convert = |c: RawCondition| -> Option<Condition> {
                 let cline = line_of(text, c.value.span().start);
                 let name = c.value.into_inner();
@@ -305,6 +329,7 @@ impl RuleSet {
                 all,
                 any,
                 add_priority: r.add_priority,
+                priority_factor: r.priority_factor,
                 queue,
                 exempt: r.exempt,
             });
@@ -399,6 +424,17 @@ impl Condition {
 }
 
 impl Rule {
+    /// Catalogue indices of the features the rule's conditions read.
+    pub fn features(&self) -> impl Iterator<Item = usize> + '_ {
+        self.all
+            .iter()
+            .chain(&self.any)
+            .filter_map(|c| match c.operand {
+                Operand::Feature(i) => Some(i),
+                _ => None,
+            })
+    }
+
     fn fires(&self, x: &Inputs, ev: f64) -> bool {
         self.all.iter().all(|c| c.holds(x, ev))
             && (self.any.is_empty() || self.any.iter().any(|c| c.holds(x, ev)))
@@ -421,12 +457,14 @@ pub fn route(rules: &RuleSet, routing: &Routing, x: &Inputs) -> Routed {
     let ev = x.probability * x.claimed_amount - routing.review_cost;
     let mut fired = Vec::new();
     let mut points = 0.0;
+    let mut factor = 1.0;
     let mut exempt = false;
     let mut forced: Option<Queue> = None;
     for r in &rules.rules {
         if r.fires(x, ev) {
             fired.push(r.id.clone());
             points += r.add_priority;
+            factor *= r.priority_factor;
             exempt |= r.exempt;
             if let Some(q) = r.queue {
                 forced = Some(forced.map_or(q, |f| f.max(q)));
@@ -452,10 +490,13 @@ pub fn route(rules: &RuleSet, routing: &Routing, x: &Inputs) -> Routed {
         } else {
             queue
         };
+    // The expected saving of a review counts what it opens: the claim and the other
+    // claimants' claims linked to it (a ring's members count with the ring's exposure).
+    let exposure = x.claimed_amount + features::linked_amount(x.features);
     let priority = if queue == Queue::Audit {
         0.0
     } else {
-        ev + points
+        (x.probability * exposure - routing.review_cost) * factor + points
     };
     Routed {
         queue,
@@ -511,6 +552,30 @@ exempt = true
         assert_eq!(r.fired, vec!["early-large"]);
         // 0.05 * 10000 - 300 + 500
         assert!((r.priority - 700.0).abs() < 1e-9);
+    }
+
+    #[test]
+    fn priority_counts_linked_exposure_and_multiplies_by_rule_factors() {
+        let text = r#"
+version = "t"
+[[rule]]
+id = "shared-account"
+reason = "Bank account shared"
+all = [{ value = "payee_account_claimants_365d", op = ">=", than = 3 }]
+priority_factor = 3
+add_priority = 100
+"#;
+        let rs = RuleSet::from_toml(text, "t").unwrap();
+        let mut fv = [0.0; features::N_FEATURES];
+        fv[features::index_of("payee_account_claimants_365d").unwrap()] = 4.0;
+        fv[features::index_of("linked_log_amount_365d").unwrap()] = 20_000f64.ln_1p();
+        let r = route(&rs, &Routing::default(), &inputs(&fv, 0.5, 10_000.0));
+        // (0.5 x (10,000 + 20,000) - 300) x 3 + 100, by hand.
+        assert!((r.priority - 44_200.0).abs() < 1e-6, "{}", r.priority);
+        // The expected value that routes the claim is the claim's own.
+        assert!((r.expected_value - 4_700.0).abs() < 1e-9);
+        let bad = RuleSet::from_toml(&text.replace("= 3\n", "= 0\n"), "t").unwrap_err();
+        assert!(bad.to_string().contains("priority_factor"), "{bad}");
     }
 
     #[test]

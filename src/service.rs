@@ -263,7 +263,7 @@ impl Service {
         let hash = content_hash(&claim);
         // Held until the decision is written: no other writer touches this claim or any
         // entity it names meanwhile (across instances on a shared store).
-        let mut keys = claim.entity_keys();
+        let mut keys = claim.lock_keys();
         keys.push(claim_lock_key(&claim.claim_id));
         let _guard = self.store.lock(&keys)?;
         let head = self.store.head(&claim.claim_id)?;
@@ -349,7 +349,29 @@ impl Service {
                 weight: 0.0,
             });
         } else {
-            reasons.extend(scored.reasons);
+            // A rule that fired already says what its features say: one reason, not two.
+            let ruled: Vec<usize> = rules
+                .rules
+                .iter()
+                .filter(|r| routed.fired.contains(&r.id))
+                .flat_map(|r| r.features().map(features::family).collect::<Vec<_>>())
+                .collect();
+            reasons.extend(scored.reasons.into_iter().filter(|r| {
+                r.code
+                    .strip_prefix("feature.")
+                    .and_then(features::index_of)
+                    .is_none_or(|i| !ruled.contains(&features::family(i)))
+            }));
+            if routed.queue != Queue::NoReview
+                && let Some(i) = features::index_of("surge_context")
+                && fv[i] == 1.0
+            {
+                reasons.push(Reason {
+                    code: "context.surge".into(),
+                    text: (CATALOGUE[i].reason)(1.0, &fv),
+                    weight: 0.0,
+                });
+            }
         }
         self.metrics
             .scoring_seconds

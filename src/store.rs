@@ -800,8 +800,8 @@ pub trait Backend: Send + Sync {
         let t = claim.event_time();
         let mut out = std::collections::BTreeSet::new();
         for key in claim.entity_keys() {
-            if key.starts_with(crate::claim::CATASTROPHE_KIND) {
-                continue; // a storm's claims share an event, not a party
+            if crate::claim::is_context_key(&key) {
+                continue; // a region's or a storm's claims share context, not a party
             }
             for id in self.history_claim_ids(&key, t - window_secs, t + window_secs + 1)? {
                 if id != claim.claim_id {

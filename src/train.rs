@@ -687,6 +687,9 @@ pub struct Report {
     pub logistic_coefficients: Vec<(String, f64)>,
     /// The highest-scored held-out claims, as an investigator would see them.
     pub top_referrals: Vec<TopReferral>,
+    /// The model on a second file's later part (`--also-evaluate`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub also_evaluated: Option<crate::elsewhere::Elsewhere>,
 }
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -1203,6 +1206,7 @@ pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trai
         outliers: outlier_report,
         logistic_coefficients,
         top_referrals,
+        also_evaluated: None,
     };
     Ok(Trained { artifact, report })
 }

@@ -347,11 +347,12 @@ async fn queues_page(State(st): State<AppState>, headers: HeaderMap) -> Response
     body.push_str("</div>");
     for (q, _) in st.settings.capacities.iter() {
         let items = st.svc.store.queue_page(*q, 0, 25).unwrap_or_default();
-        let _ = write!(
-            body,
-            "<h2>{} — highest priority first</h2>",
-            queue_title(*q)
-        );
+        let order = if *q == Queue::Audit {
+            "drawn at random, in no order of suspicion"
+        } else {
+            "highest priority first"
+        };
+        let _ = write!(body, "<h2>{} — {order}</h2>", queue_title(*q));
         if items.is_empty() {
             body.push_str("<p>Nothing waiting.</p>");
             continue;

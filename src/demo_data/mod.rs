@@ -26,6 +26,34 @@ use rand::SeedableRng;
 use rand_xoshiro::Xoshiro256Plus;
 use serde::Serialize;
 
+mod second;
+pub use second::generate as generate_second;
+
+/// Which invented world to generate.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum World {
+    /// Fernlow Mutual: the demo's world, the only one any choice of the project was made on.
+    Fernlow,
+    /// Osterby Mutual: written to be different, and used only to evaluate (never to choose).
+    Osterby,
+}
+
+impl World {
+    pub fn generate(self, n: usize, seed: u64) -> Vec<DemoClaim> {
+        match self {
+            World::Fernlow => generate(n, seed),
+            World::Osterby => generate_second(n, seed),
+        }
+    }
+
+    pub fn insurer(self) -> &'static str {
+        match self {
+            World::Fernlow => "Fernlow Mutual",
+            World::Osterby => "Osterby Mutual",
+        }
+    }
+}
+
 pub const REGIONS: [&str; 4] = ["Aldermoor", "Brackenhythe", "Carrow Sound", "Dunmere"];
 /// Claims a day the invented insurer receives; the period covered grows with the claim count
 /// (from 180 days up to 545) so a small demo file still has a realistic daily volume.
@@ -35,7 +63,7 @@ const N_MEDICAL: usize = 45;
 const N_ATTORNEYS: usize = 30;
 
 /// Which planted mechanism produced a claim (`genuine` for none).
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum Mechanism {
     Genuine,
@@ -43,6 +71,13 @@ pub enum Mechanism {
     EarlyLoss,
     Inflated,
     StagedTheft,
+    // The second world's (see `second`).
+    StagedCollision,
+    BillingMill,
+    MulePayout,
+    PhantomDamage,
+    /// A genuine claim of the second world's weather surge.
+    Surge,
 }
 
 impl Mechanism {
@@ -53,6 +88,11 @@ impl Mechanism {
             Mechanism::EarlyLoss => "early_loss",
             Mechanism::Inflated => "inflated",
             Mechanism::StagedTheft => "staged_theft",
+            Mechanism::StagedCollision => "staged_collision",
+            Mechanism::BillingMill => "billing_mill",
+            Mechanism::MulePayout => "mule_payout",
+            Mechanism::PhantomDamage => "phantom_damage",
+            Mechanism::Surge => "surge",
         }
     }
 }
@@ -78,6 +118,7 @@ struct Person {
     region: usize,
 }
 
+/// The generator both worlds share: people, their claims, and the draws.
 struct Gen {
     rng: Xoshiro256Plus,
     start: NaiveDate,
@@ -87,6 +128,10 @@ struct Gen {
     next_person: usize,
     next_witness: usize,
     out: Vec<DemoClaim>,
+    regions: &'static [&'static str],
+    currency: &'static str,
+    /// Catastrophe code put on the next claims pushed (the second world's storm).
+    catastrophe: Option<String>,
 }
 
 fn round2(x: f64) -> f64 {
@@ -118,7 +163,7 @@ impl Gen {
     fn new_person(&mut self, line: Line, policy_start: NaiveDate) -> usize {
         let id = self.next_person;
         self.next_person += 1;
-        let region = self.rng.gen_range(0..REGIONS.len());
+        let region = self.rng.gen_range(0..self.regions.len());
         self.people.push(Person {
             id,
             line,
@@ -189,10 +234,10 @@ impl Gen {
             policy_start: p.policy_start,
             claimed_amount: round2(amount.max(50.0)),
             sum_insured,
-            currency: "EUR".into(),
-            region: Some(REGIONS[p.region].to_string()),
+            currency: self.currency.into(),
+            region: Some(self.regions[p.region].to_string()),
             address_id: home_address.then(|| format!("H-{:06}", p.id)),
-            catastrophe_code: None,
+            catastrophe_code: self.catastrophe.clone(),
             parties,
             circumstances,
         };
@@ -498,6 +543,9 @@ pub fn generate(n: usize, seed: u64) -> Vec<DemoClaim> {
         next_person: 1,
         next_witness: 0,
         out: Vec::with_capacity(n + 64),
+        regions: &REGIONS,
+        currency: "EUR",
+        catastrophe: None,
     };
     let ring_claims = (n as f64 * 0.015).round() as usize;
     let mut left = ring_claims;
@@ -519,7 +567,11 @@ pub fn generate(n: usize, seed: u64) -> Vec<DemoClaim> {
         g.genuine(false);
     }
     g.out.truncate(n);
-    let mut out = g.out;
+    sorted(g.out)
+}
+
+/// Claims in report order (claim id breaks ties), as a claims system would send them.
+fn sorted(mut out: Vec<DemoClaim>) -> Vec<DemoClaim> {
     out.sort_by(|a, b| {
         a.claim
             .reported_at

@@ -480,7 +480,7 @@ impl Claim {
     /// address and parties, which link claims, and the context kinds ([`CONTEXT_KINDS`]: the
     /// region and the catastrophe event), which let features see a surge but link nothing.
     pub fn entity_keys(&self) -> Vec<String> {
-        let mut keys = self.lock_keys();
+        let mut keys = self.link_keys();
         if let Some(r) = &self.region {
             keys.push(format!("{REGION_KIND}:{r}"));
         }
@@ -492,11 +492,11 @@ impl Claim {
         keys
     }
 
-    /// The keys a decision locks: the entities that link claims. Context kinds are left out,
+    /// The entities that link claims, which a decision also locks. Context kinds are left out,
     /// so that every claim of a region is not decided one at a time; two claims of one region
     /// decided at the same instant may then each miss the other in the region's count (a
     /// count of hundreds, read only for surges).
-    pub fn lock_keys(&self) -> Vec<String> {
+    pub fn link_keys(&self) -> Vec<String> {
         let mut keys = vec![
             format!("claimant:{}", self.claimant_id),
             format!("policy:{}", self.policy_id),

@@ -332,7 +332,14 @@ pub fn names() -> Vec<&'static str> {
 
 /// The amounts of other claimants' claims linked to this one (see `linked_log_amount_365d`).
 pub fn linked_amount(full: &[f64]) -> f64 {
-    full[F::LinkedAmount as usize].exp_m1()
+    // Bounded (at 1e15, far above any book) so that a corrupt value cannot make a priority
+    // infinite; a missing one counts as nothing linked.
+    let v = full[F::LinkedAmount as usize];
+    if v.is_finite() {
+        v.clamp(0.0, 15.0 * std::f64::consts::LN_10).exp_m1()
+    } else {
+        0.0
+    }
 }
 
 /// Features that say one thing share a family, named by its first member's index: a claim

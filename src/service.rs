@@ -263,7 +263,7 @@ impl Service {
         let hash = content_hash(&claim);
         // Held until the decision is written: no other writer touches this claim or any
         // entity it names meanwhile (across instances on a shared store).
-        let mut keys = claim.lock_keys();
+        let mut keys = claim.link_keys();
         keys.push(claim_lock_key(&claim.claim_id));
         let _guard = self.store.lock(&keys)?;
         let head = self.store.head(&claim.claim_id)?;

@@ -361,7 +361,7 @@ fn linked_claims_by_party(store: Store) {
     for d in claims.iter().step_by(37) {
         let keys: BTreeSet<String> = d
             .claim
-            .entity_keys()
+            .link_keys()
             .into_iter()
             .filter(|k| !k.starts_with("claimant:"))
             .collect();
@@ -372,7 +372,7 @@ fn linked_claims_by_party(store: Store) {
             {
                 continue;
             }
-            for k in o.claim.entity_keys() {
+            for k in o.claim.link_keys() {
                 if keys.contains(&k) {
                     want.entry(k).or_default().insert(o.claim.claim_id.clone());
                 }

@@ -139,7 +139,7 @@ fn main() -> anyhow::Result<()> {
         let config = weir::config::Config::default();
         let trained = weir::train::train(loaded, &config, false)?;
         println!(
-            "whole weir train pipeline (default config: 3 alphas x 5 folds, trees, k-means x 3 runs): {:.1} s, champion {}",
+            "whole weir train pipeline (default config: 3 alphas and 4 tree settings x 5 folds, the blend, k-means x 3 runs): {:.1} s, champion {}",
             t.elapsed().as_secs_f64(),
             trained.report.champion
         );

@@ -44,11 +44,22 @@ pub struct HistoryEvent {
 pub trait HistoryView {
     /// Call `f` for every event of `entity` with `from <= at < to`.
     fn for_each_event(&self, entity: &str, from: i64, to: i64, f: &mut dyn FnMut(&HistoryEvent));
+
+    /// How many events of `entity` have `from <= at < to`. Views that hold sorted lists
+    /// answer by binary search: a region's count reads hundreds of events otherwise.
+    fn count_events(&self, entity: &str, from: i64, to: i64) -> usize {
+        let mut n = 0;
+        self.for_each_event(entity, from, to, &mut |_| n += 1);
+        n
+    }
 }
 
 impl<T: HistoryView + ?Sized> HistoryView for &T {
     fn for_each_event(&self, entity: &str, from: i64, to: i64, f: &mut dyn FnMut(&HistoryEvent)) {
         (**self).for_each_event(entity, from, to, f);
+    }
+    fn count_events(&self, entity: &str, from: i64, to: i64) -> usize {
+        (**self).count_events(entity, from, to)
     }
 }
 
@@ -134,6 +145,13 @@ impl HistoryView for MemoryHistory {
                 f(e);
             }
         }
+    }
+
+    fn count_events(&self, entity: &str, from: i64, to: i64) -> usize {
+        self.by_entity.get(entity).map_or(0, |list| {
+            let end = list.partition_point(|e| e.at < to);
+            end.saturating_sub(list.partition_point(|e| e.at < from))
+        })
     }
 }
 
@@ -466,8 +484,50 @@ fn b(x: bool) -> f64 {
     if x { 1.0 } else { 0.0 }
 }
 
+/// Buffers one feature computation fills and empties again: kept per thread, so that a claim
+/// costs no allocation once the first few have been computed.
+#[derive(Default)]
+struct Buffers {
+    key: String,
+    scratch: Vec<u64>,
+    window: Window,
+    parties: Vec<Window>,
+    linked_long: Vec<u64>,
+    linked_short: Vec<u64>,
+    linked_claims: Vec<(u64, f64)>,
+    storm: Vec<u64>,
+    by_claim: Vec<Vec<(u64, u64, f64)>>,
+}
+
+thread_local! {
+    static BUFFERS: std::cell::RefCell<Buffers> = std::cell::RefCell::new(Buffers::default());
+}
+
 /// Compute every catalogue feature of `claim` against `history`.
 pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
+    BUFFERS.with(|b| match b.try_borrow_mut() {
+        Ok(mut bufs) => compute_with(claim, history, &mut bufs),
+        // Re-entered from inside a history view (never today): fresh buffers.
+        Err(_) => compute_with(claim, history, &mut Buffers::default()),
+    })
+}
+
+fn compute_with(claim: &Claim, history: &dyn HistoryView, bufs: &mut Buffers) -> FeatureVector {
+    let Buffers {
+        key,
+        scratch,
+        window: w,
+        parties: windows,
+        linked_long,
+        linked_short,
+        linked_claims,
+        storm,
+        by_claim,
+    } = bufs;
+    for l in [&mut *linked_long, &mut *linked_short, &mut *storm] {
+        l.clear();
+    }
+    linked_claims.clear();
     let mut v = [0.0; N_FEATURES];
     let t = claim.event_time();
     let short_from = t - SHORT_WINDOW_DAYS * DAY;
@@ -495,9 +555,6 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
     v[F::BelowRound as usize] = b(round_figure_above(amount).is_some_and(|r| amount >= 0.98 * r));
     v[F::Catastrophe as usize] = b(claim.catastrophe_code.is_some());
 
-    let mut key = String::with_capacity(96);
-    let mut scratch = Vec::new();
-    let mut w = Window::default();
     let mut load = |w: &mut Window, kind: &str, id: &str| {
         key.clear();
         key.push_str(kind);
@@ -506,30 +563,25 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
         w.load(history, &key, t, claim_h);
     };
 
-    load(&mut w, "claimant", &claim.claimant_id);
+    load(w, "claimant", &claim.claimant_id);
     v[F::ClaimantShort as usize] = w.events.iter().filter(|e| e.at >= short_from).count() as f64;
     v[F::ClaimantLong as usize] = w.events.len() as f64;
     v[F::ClaimantAmountLong as usize] = w.events.iter().map(|e| e.amount).sum::<f64>().ln_1p();
-    load(&mut w, "policy", &claim.policy_id);
+    load(w, "policy", &claim.policy_id);
     v[F::PolicyLong as usize] = w.events.len() as f64;
 
     // Claims filed under the same catastrophe event: a storm's contractors are busy for it.
-    let mut storm: Vec<u64> = Vec::new();
     if let Some(code) = &claim.catastrophe_code {
-        load(&mut w, crate::claim::CATASTROPHE_KIND, code);
-        storm = w.events.iter().map(|e| e.claim).collect();
+        load(w, crate::claim::CATASTROPHE_KIND, code);
+        storm.extend(w.events.iter().map(|e| e.claim));
         storm.sort_unstable();
     }
     if let Some(region) = &claim.region {
-        load(&mut w, crate::claim::REGION_KIND, region);
+        let rkey = format!("{}:{region}", crate::claim::REGION_KIND);
         let recent_from = t - SURGE_RECENT_DAYS * DAY;
         let past_from = t - REGION_WINDOW_DAYS * DAY;
-        let recent = w.events.iter().filter(|e| e.at >= recent_from).count() as f64;
-        let past = w
-            .events
-            .iter()
-            .filter(|e| e.at >= past_from && e.at < recent_from)
-            .count() as f64;
+        let recent = history.count_events(&rkey, recent_from, t) as f64;
+        let past = history.count_events(&rkey, past_from, recent_from) as f64;
         let usual =
             past * SURGE_RECENT_DAYS as f64 / (REGION_WINDOW_DAYS - SURGE_RECENT_DAYS) as f64;
         // Without a baseline (a new region, the start of the history) there is no surge to
@@ -544,14 +596,13 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
     v[F::SurgeContext as usize] = b(regional_surge || claim.catastrophe_code.is_some());
 
     // Per party: its window, kept for the pair, similarity and typical-amount features.
-    let mut windows: Vec<(Role, Window)> = Vec::with_capacity(claim.parties.len());
-    let mut linked_long: Vec<u64> = Vec::new();
-    let mut linked_short: Vec<u64> = Vec::new();
-    // Other claimants' claims linked to this one, with their amounts (the exposure).
-    let mut linked_claims: Vec<(u64, f64)> = Vec::new();
-    for p in &claim.parties {
-        let mut pw = Window::default();
-        load(&mut pw, p.role.as_str(), &p.id);
+    // (`linked_claims`: other claimants' claims linked to this one, with their amounts: the
+    // exposure.)
+    if windows.len() < claim.parties.len() {
+        windows.resize_with(claim.parties.len(), Window::default);
+    }
+    for (p, pw) in claim.parties.iter().zip(windows.iter_mut()) {
+        load(pw, p.role.as_str(), &p.id);
         let (recent_i, burst_i, long_i) = match p.role {
             Role::Repairer => (F::RepairerRecent, Some(F::RepairerBurst), None),
             Role::MedicalProvider => (F::MedicalRecent, Some(F::MedicalBurst), None),
@@ -562,8 +613,8 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
         };
         if let Some(burst_i) = burst_i {
             let not_storm = |e: &HistoryEvent| storm.binary_search(&e.claim).is_err();
-            let recent = pw.claimants(me, &mut scratch, |e| e.at >= short_from && not_storm(e));
-            let past = pw.claimants(me, &mut scratch, |e| e.at < short_from && not_storm(e));
+            let recent = pw.claimants(me, scratch, |e| e.at >= short_from && not_storm(e));
+            let past = pw.claimants(me, scratch, |e| e.at < short_from && not_storm(e));
             let usual =
                 past * SHORT_WINDOW_DAYS as f64 / (LONG_WINDOW_DAYS - SHORT_WINDOW_DAYS) as f64;
             // In a regional surge without an event code, a firm's burst cannot be told from
@@ -582,7 +633,7 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
             }
         }
         if long_i.is_some() {
-            let c = pw.claimants(me, &mut scratch, |_| true);
+            let c = pw.claimants(me, scratch, |_| true);
             v[recent_i as usize] = v[recent_i as usize].max(c);
             for e in pw.events.iter().filter(|e| e.claimant != me) {
                 linked_long.push(e.claimant);
@@ -592,11 +643,11 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
                 }
             }
         }
-        windows.push((p.role, pw));
     }
+    let windows = &windows[..claim.parties.len()];
     if let Some(addr) = &claim.address_id {
-        load(&mut w, "address", addr);
-        v[F::AddressClaimants as usize] = w.claimants(me, &mut scratch, |_| true);
+        load(w, "address", addr);
+        v[F::AddressClaimants as usize] = w.claimants(me, scratch, |_| true);
         for e in w.events.iter().filter(|e| e.claimant != me) {
             linked_long.push(e.claimant);
             linked_claims.push((e.claim, e.amount));
@@ -605,7 +656,7 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
             }
         }
     }
-    for l in [&mut linked_long, &mut linked_short] {
+    for l in [&mut *linked_long, &mut *linked_short] {
         l.sort_unstable();
         l.dedup();
     }
@@ -613,19 +664,16 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
     v[F::LinkedShort as usize] = linked_short.len() as f64;
 
     // Parties named together on other claimants' claims.
-    let mut by_claim: Vec<Vec<(u64, u64, f64)>> = windows
-        .iter()
-        .map(|(_, pw)| {
-            let mut c: Vec<(u64, u64, f64)> = pw
-                .events
-                .iter()
-                .map(|e| (e.claim, e.claimant, e.amount))
-                .collect();
-            c.sort_by_key(|e| e.0);
-            c.dedup_by_key(|e| e.0);
-            c
-        })
-        .collect();
+    if by_claim.len() < windows.len() {
+        by_claim.resize_with(windows.len(), Vec::new);
+    }
+    for (c, pw) in by_claim.iter_mut().zip(windows) {
+        c.clear();
+        c.extend(pw.events.iter().map(|e| (e.claim, e.claimant, e.amount)));
+        c.sort_unstable_by_key(|e| e.0);
+        c.dedup_by_key(|e| e.0);
+    }
+    let by_claim = &by_claim[..windows.len()];
     let mut best_pair = 0.0f64;
     for i in 0..by_claim.len() {
         for j in i + 1..by_claim.len() {
@@ -656,7 +704,6 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
             best_pair = best_pair.max(scratch.len() as f64);
         }
     }
-    by_claim.clear();
     v[F::PairClaimants as usize] = best_pair;
     linked_claims.sort_by_key(|e| e.0);
     linked_claims.dedup_by_key(|e| e.0);
@@ -665,7 +712,7 @@ pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
     // Amounts against the same parties' earlier claims.
     let mut best_share = 0.0f64;
     let mut typical_from: Option<&Window> = None;
-    for (_, pw) in &windows {
+    for pw in windows {
         let k = pw.events.len();
         if k < 3 {
             continue;

@@ -429,6 +429,18 @@ impl HistoryCache {
         true
     }
 
+    /// The number of cached events of `entity` in `[from, to)`, when the list covers `from`.
+    fn count(&self, entity: &str, from: i64, to: i64) -> Option<usize> {
+        let shard = self.shard(entity);
+        let c = shard.lists.get(entity)?;
+        if c.from > from {
+            return None;
+        }
+        self.hits.fetch_add(1, Ordering::Relaxed);
+        let end = c.events.partition_point(|e| e.at < to);
+        Some(end.saturating_sub(c.events.partition_point(|e| e.at < from)))
+    }
+
     /// Keep `events` (every event of `entity` from `from` on, read from the index when the
     /// epoch was `epoch`) unless a purge ran meanwhile.
     fn fill(&self, entity: &str, from: i64, mut events: Vec<HistoryEvent>, epoch: u64) {
@@ -1406,6 +1418,20 @@ impl SledStore {
 }
 
 impl HistoryView for SledStore {
+    fn count_events(&self, entity: &str, from: i64, to: i64) -> usize {
+        if let Some(n) = self
+            .history_cache
+            .enabled()
+            .then(|| self.history_cache.count(entity, from, to))
+            .flatten()
+        {
+            return n;
+        }
+        let mut n = 0;
+        self.for_each_event(entity, from, to, &mut |_| n += 1);
+        n
+    }
+
     fn for_each_event(&self, entity: &str, from: i64, to: i64, f: &mut dyn FnMut(&HistoryEvent)) {
         let cache = &self.history_cache;
         if !cache.enabled() {

@@ -6,7 +6,7 @@
 use ndarray::Array2;
 use serde_json::Value;
 use weir::metrics::{self, Confusion};
-use weir::model::{Isotonic, Logistic, Platt, sigmoid};
+use weir::model::{Isotonic, Logistic, Platt, TreeSettings, Trees, sigmoid};
 use weir::monitor::drift;
 use weir::outliers::{KMeansSettings, OutlierModel};
 
@@ -332,4 +332,39 @@ fn expected_calibration_error_matches_a_direct_computation() {
         1e-12,
         "ECE",
     );
+}
+
+/// Source: forust-ml's own `predict` and `predict_contributions(ContributionsMethod::Average)`,
+/// against weir's walk of the same trees, on the standardised breast cancer data bundled in
+/// scikit-learn (depth 5, 60 rounds, so that missing-free splits of every depth are taken).
+#[test]
+fn tree_walk_matches_forust_predictions_and_contributions() {
+    let f = fixture("logistic_breast_cancer.json");
+    let z = matrix(&f["z"]);
+    let y = bools(&f["y"]);
+    let settings = TreeSettings {
+        iterations: 60,
+        learning_rate: 0.1,
+        max_depth: 5,
+        min_leaf_weight: 1.0,
+        seed: 3,
+    };
+    let t = Trees::fit(z.view(), &y, &vec![1.0; y.len()], &settings).unwrap();
+    let ours = t.margins(z.view());
+    let theirs = t.forust_margins(z.view());
+    for (i, row) in z.outer_iter().enumerate() {
+        close(ours[i], theirs[i], 1e-9, &format!("margin[{i}]"));
+        let row = row.to_vec();
+        let mut c = vec![0.0; row.len()];
+        let m = t.margin_and_contributions(&row, &mut c);
+        close(
+            m,
+            theirs[i],
+            1e-9,
+            &format!("margin with contributions[{i}]"),
+        );
+        for (j, (a, b)) in c.iter().zip(t.forust_contributions(&row)).enumerate() {
+            close(*a, b, 1e-9, &format!("contribution[{i}][{j}]"));
+        }
+    }
 }

@@ -560,7 +560,7 @@ fn compute_with(claim: &Claim, history: &dyn HistoryView, bufs: &mut Buffers) ->
         key.push_str(kind);
         key.push(':');
         key.push_str(id);
-        w.load(history, &key, t, claim_h);
+        w.load(history, key, t, claim_h);
     };
 
     load(w, "claimant", &claim.claimant_id);

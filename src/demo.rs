@@ -163,14 +163,19 @@ pub async fn run(o: DemoOptions) -> Result<()> {
             .get(&format!("/v1/queues/{}?limit=5", q.as_str()))
             .await?
             .json()?;
-        println!("\n   top of {}:", q.as_str());
+        let order = if q == Queue::Audit {
+            "drawn at random, in no order of suspicion"
+        } else {
+            "priority: expected saving with linked exposure, in currency units"
+        };
+        println!("\n   top of {} ({order}):", q.as_str());
         for item in page["items"].as_array().into_iter().flatten() {
             println!(
-                "     {}  priority {:>8.0}  {} {:>9.2}  p={:.2} outlier={:.2}",
+                "     {}  priority {:>9}  {} {:>9}  p={:.2} outlier={:.2}",
                 item["claim_id"].as_str().unwrap_or("?"),
-                item["priority"].as_f64().unwrap_or(0.0),
+                crate::features::fmt_amount(item["priority"].as_f64().unwrap_or(0.0)),
                 item["currency"].as_str().unwrap_or(""),
-                item["claimed_amount"].as_f64().unwrap_or(0.0),
+                crate::features::fmt_amount(item["claimed_amount"].as_f64().unwrap_or(0.0)),
                 item["model_probability"].as_f64().unwrap_or(0.0),
                 item["outlier_score"].as_f64().unwrap_or(0.0),
             );

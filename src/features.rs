@@ -400,9 +400,14 @@ fn round_figure_above(a: f64) -> Option<f64> {
     None
 }
 
+/// How far beyond the training mean, in standard deviations, a value must lie to be called
+/// unusual in a reason (common practice, no source: about the outer seventh of a normal
+/// population; a flag qualifies when fewer than about three claims in ten carry it).
+pub const UNUSUAL_Z: f64 = 1.5;
+
 /// The model's reasons for a score: features whose contribution raises the log-odds
 /// noticeably (by 0.2, a factor of about 1.2 in the odds), whose value lies on their warning
-/// side and is unusual (at least one standard deviation of the training data beyond its
+/// side and is unusual ([`UNUSUAL_Z`] standard deviations of the training data beyond its
 /// mean), strongest first. `index` maps model features to the catalogue; `z` are the
 /// standardised model features and `contrib` their contributions.
 pub fn reasons(
@@ -415,8 +420,8 @@ pub fn reasons(
     let mut order: Vec<usize> = (0..contrib.len())
         .filter(|&i| contrib[i] > 0.2)
         .filter(|&i| match warning_side(index[i]) {
-            Warning::High => z[i] >= 1.0,
-            Warning::Low => z[i] <= -1.0,
+            Warning::High => z[i] >= UNUSUAL_Z,
+            Warning::Low => z[i] <= -UNUSUAL_Z,
             Warning::Never => false,
         })
         .collect();

@@ -122,46 +122,34 @@ fn scoring(c: &mut Criterion) {
             ))
         })
     });
-    g.bench_function("whole_core", |b| {
-        b.iter(|| {
-            i = (i + 1) % 1000;
-            let cl = &claims[i];
-            let fv = features::compute(cl, &history);
-            let s = model.score(&fv);
-            black_box(rules::route(
-                &rules,
-                &routing,
-                &Inputs {
-                    claim_id: &cl.claim_id,
-                    features: &fv,
-                    probability: s.probability,
-                    outlier_score: s.outlier_score,
-                    claimed_amount: cl.claimed_amount,
-                    model_threshold: model.artifact.threshold,
-                },
-            ))
-        })
-    });
-    g.bench_function("whole_core_default_champion", |b| {
-        b.iter(|| {
-            i = (i + 1) % 1000;
-            let cl = &claims[i];
-            let fv = features::compute(cl, &history);
-            let s = champion.score(&fv);
-            black_box(rules::route(
-                &rules,
-                &routing,
-                &Inputs {
-                    claim_id: &cl.claim_id,
-                    features: &fv,
-                    probability: s.probability,
-                    outlier_score: s.outlier_score,
-                    claimed_amount: cl.claimed_amount,
-                    model_threshold: champion.artifact.threshold,
-                },
-            ))
-        })
-    });
+    // Features, model with reasons, outlier score and rules: what intake runs per claim.
+    let whole = |m: &Model, cl: &weir::claim::Claim| {
+        let fv = features::compute(cl, &history);
+        let s = m.score(&fv);
+        rules::route(
+            &rules,
+            &routing,
+            &Inputs {
+                claim_id: &cl.claim_id,
+                features: &fv,
+                probability: s.probability,
+                outlier_score: s.outlier_score,
+                claimed_amount: cl.claimed_amount,
+                model_threshold: m.artifact.threshold,
+            },
+        )
+    };
+    for (name, m) in [
+        ("whole_core", &model),
+        ("whole_core_default_champion", &champion),
+    ] {
+        g.bench_function(name, |b| {
+            b.iter(|| {
+                i = (i + 1) % 1000;
+                black_box(whole(m, &claims[i]))
+            })
+        });
+    }
     g.finish();
 }
 

@@ -111,6 +111,26 @@ impl DemoClaim {
     }
 }
 
+/// How a world's genuine claims name parties: id prefix, chances (repairer for motor and
+/// home, attorney on an injury, witness, third party on motor) and firm pool sizes.
+struct PartyMix {
+    prefix: &'static str,
+    repairer: (f64, f64),
+    attorney: f64,
+    witness: f64,
+    third_party: f64,
+    pools: (usize, usize, usize),
+}
+
+const FERNLOW_PARTIES: PartyMix = PartyMix {
+    prefix: "",
+    repairer: (0.8, 0.55),
+    attorney: 0.3,
+    witness: 0.3,
+    third_party: 0.5,
+    pools: (N_REPAIRERS, N_MEDICAL, N_ATTORNEYS),
+};
+
 struct Person {
     id: usize,
     line: Line,
@@ -252,6 +272,52 @@ impl Gen {
         Party { role, id }
     }
 
+    /// The parties of a genuine claim: the claimant's own account, a repairer, for an injury a
+    /// medical provider and perhaps an attorney, a witness, and for motor a third party.
+    fn genuine_parties(
+        &mut self,
+        account: Party,
+        line: Line,
+        injury: bool,
+        mix: &PartyMix,
+    ) -> Vec<Party> {
+        let mut parties = vec![account];
+        let prefix = mix.prefix;
+        if self.chance(match line {
+            Line::Motor => mix.repairer.0,
+            Line::Home => mix.repairer.1,
+        }) {
+            let r = self.firm(mix.pools.0);
+            parties.push(Self::party(Role::Repairer, format!("{prefix}R-{r:03}")));
+        }
+        if injury {
+            let m = self.firm(mix.pools.1);
+            parties.push(Self::party(
+                Role::MedicalProvider,
+                format!("{prefix}M-{m:03}"),
+            ));
+            if self.chance(mix.attorney) {
+                let a = self.firm(mix.pools.2);
+                parties.push(Self::party(Role::Attorney, format!("{prefix}A-{a:03}")));
+            }
+        }
+        if self.chance(mix.witness) {
+            self.next_witness += 1;
+            parties.push(Self::party(
+                Role::Witness,
+                format!("{prefix}W-{:06}", self.next_witness),
+            ));
+        }
+        if line == Line::Motor && self.chance(mix.third_party) {
+            self.next_witness += 1;
+            parties.push(Self::party(
+                Role::ThirdParty,
+                format!("{prefix}T-{:06}", self.next_witness),
+            ));
+        }
+        parties
+    }
+
     fn genuine(&mut self, inflate: bool) {
         // Reuse an existing claimant now and then (repeat claimants are mostly genuine).
         let person = if !self.people.is_empty() && self.chance(0.12) {
@@ -317,36 +383,11 @@ impl Gen {
         let known = self.chance(0.85);
         let night = self.chance(0.12);
         let time = if known { self.loss_time(night) } else { None };
-        let mut parties = vec![Self::party(
+        let account = Self::party(
             Role::PayeeAccount,
             format!("B-{:06}", self.people[person].id),
-        )];
-        if self.chance(if line == Line::Motor { 0.8 } else { 0.55 }) {
-            let r = self.firm(N_REPAIRERS);
-            parties.push(Self::party(Role::Repairer, format!("R-{r:03}")));
-        }
-        if injury {
-            let m = self.firm(N_MEDICAL);
-            parties.push(Self::party(Role::MedicalProvider, format!("M-{m:03}")));
-            if self.chance(0.3) {
-                let a = self.firm(N_ATTORNEYS);
-                parties.push(Self::party(Role::Attorney, format!("A-{a:03}")));
-            }
-        }
-        if self.chance(0.3) {
-            self.next_witness += 1;
-            parties.push(Self::party(
-                Role::Witness,
-                format!("W-{:06}", self.next_witness),
-            ));
-        }
-        if line == Line::Motor && self.chance(0.5) {
-            self.next_witness += 1;
-            parties.push(Self::party(
-                Role::ThirdParty,
-                format!("T-{:06}", self.next_witness),
-            ));
-        }
+        );
+        let parties = self.genuine_parties(account, line, injury, &FERNLOW_PARTIES);
         let c = Circumstances {
             police_report: police,
             injury,

@@ -25,7 +25,7 @@
 //! the catastrophe code `CAT-HAIL-1`: genuine claims that a model must not send to
 //! investigation for arriving together.
 
-use super::{DemoClaim, Gen, Mechanism, sorted};
+use super::{DemoClaim, Gen, Mechanism, PartyMix, sorted};
 use crate::claim::{Circumstances, Claim, Line, Party, Role};
 use crate::feedback::Outcome;
 use chrono::{Duration, NaiveDate, TimeZone, Utc};
@@ -44,6 +44,14 @@ const N_REPAIRERS: usize = 140;
 const N_MEDICAL: usize = 70;
 const N_ATTORNEYS: usize = 40;
 const STORM_CODE: &str = "CAT-HAIL-1";
+const OSTERBY_PARTIES: PartyMix = PartyMix {
+    prefix: "O",
+    repairer: (0.7, 0.45),
+    attorney: 0.45,
+    witness: 0.2,
+    third_party: 0.6,
+    pools: (N_REPAIRERS, N_MEDICAL, N_ATTORNEYS),
+};
 
 /// One claim as the second world builds it (ids carry an `O` for Osterby).
 struct Draft {
@@ -185,33 +193,8 @@ impl Gen {
         } else {
             None
         };
-        let mut parties = vec![self.own_account(person)];
-        if self.chance(if line == Line::Motor { 0.7 } else { 0.45 }) {
-            let r = self.firm(N_REPAIRERS);
-            parties.push(Gen::party(Role::Repairer, format!("OR-{r:03}")));
-        }
-        if injury {
-            let m = self.firm(N_MEDICAL);
-            parties.push(Gen::party(Role::MedicalProvider, format!("OM-{m:03}")));
-            if self.chance(0.45) {
-                let a = self.firm(N_ATTORNEYS);
-                parties.push(Gen::party(Role::Attorney, format!("OA-{a:03}")));
-            }
-        }
-        if self.chance(0.2) {
-            self.next_witness += 1;
-            parties.push(Gen::party(
-                Role::Witness,
-                format!("OW-{:06}", self.next_witness),
-            ));
-        }
-        if line == Line::Motor && self.chance(0.6) {
-            self.next_witness += 1;
-            parties.push(Gen::party(
-                Role::ThirdParty,
-                format!("OT-{:06}", self.next_witness),
-            ));
-        }
+        let account = self.own_account(person);
+        let parties = self.genuine_parties(account, line, injury, &OSTERBY_PARTIES);
         let address = (line == Line::Home || self.chance(0.7)).then(|| self.home_of(person));
         let circumstances = Circumstances {
             police_report: police,

@@ -373,6 +373,9 @@ impl Service {
                 });
             }
         }
+        if routed.queue != Queue::NoReview {
+            self.name_linked_claims(&claim, &rules, &mut reasons)?;
+        }
         self.metrics
             .scoring_seconds
             .observe(t0.elapsed().as_secs_f64());
@@ -436,6 +439,87 @@ impl Service {
             .with_label_values(&[rec.queue.as_str()])
             .inc();
         Ok((rec, status))
+    }
+
+    /// Name the claims behind a linking reason ("... to 4 other claimants in the last year:
+    /// C-000017, C-000024, ..."): the feature counted them, and the investigator will open
+    /// them. Earlier claims through the same entities the feature reads, from the history index.
+    fn name_linked_claims(
+        &self,
+        claim: &Claim,
+        rules: &RuleSet,
+        reasons: &mut [Reason],
+    ) -> Result<(), ServiceError> {
+        const PERSONAL: [&str; 4] = ["payee_account", "witness", "third_party", "address"];
+        // Which entity kinds a linking feature reads, over how many days, and whether a claim
+        // must name two of this claim's parties together.
+        let linking = |name: &str| -> Option<(Vec<&str>, i64, bool)> {
+            Some(match name {
+                "linked_claimants_365d" => (PERSONAL.to_vec(), features::LONG_WINDOW_DAYS, false),
+                "linked_claimants_30d" => (PERSONAL.to_vec(), features::SHORT_WINDOW_DAYS, false),
+                "payee_account_claimants_365d" => (vec!["payee_account"], 365, false),
+                "witness_claimants_365d" => (vec!["witness"], 365, false),
+                "third_party_claimants_365d" => (vec!["third_party"], 365, false),
+                "address_claimants_365d" => (vec!["address"], 365, false),
+                "party_pair_claimants_365d" => (
+                    crate::claim::Role::ALL.iter().map(|r| r.as_str()).collect(),
+                    365,
+                    true,
+                ),
+                _ => return None,
+            })
+        };
+        let t = claim.event_time();
+        let keys = claim.link_keys();
+        for r in reasons.iter_mut() {
+            // A rule reason names the claims of the first linking feature its conditions read.
+            let names: Vec<&str> = match r.code.strip_prefix("rule.") {
+                Some(id) => rules
+                    .rules
+                    .iter()
+                    .filter(|rule| rule.id == id)
+                    .flat_map(|rule| rule.features().map(|i| CATALOGUE[i].name))
+                    .collect(),
+                None => r.code.strip_prefix("feature.").into_iter().collect(),
+            };
+            let Some((kinds, days, together)) = names.iter().find_map(|n| linking(n)) else {
+                continue;
+            };
+            let mut ids: Vec<String> = Vec::new();
+            for k in keys
+                .iter()
+                .filter(|k| kinds.contains(&k.split_once(':').map_or("", |(kind, _)| kind)))
+            {
+                ids.extend(
+                    self.store
+                        .history_claim_ids(k, t - days * features::DAY, t)?
+                        .into_iter()
+                        .filter(|id| *id != claim.claim_id),
+                );
+            }
+            ids.sort();
+            if together {
+                // Claims naming two of this claim's parties: listed under two keys or more.
+                let mut kept = Vec::new();
+                for w in ids.chunk_by(|a, b| a == b) {
+                    if w.len() >= 2 {
+                        kept.push(w[0].clone());
+                    }
+                }
+                ids = kept;
+            }
+            ids.dedup();
+            if !ids.is_empty() {
+                let shown: Vec<&str> = ids.iter().take(5).map(String::as_str).collect();
+                let more = ids.len().saturating_sub(shown.len());
+                r.text = if more > 0 {
+                    format!("{}: {} and {more} more", r.text, shown.join(", "))
+                } else {
+                    format!("{}: {}", r.text, shown.join(", "))
+                };
+            }
+        }
+        Ok(())
     }
 
     /// Decide one claim and return once the decision is on disk.

@@ -388,6 +388,53 @@ fn linked_claims_by_party(store: Store) {
     }
 }
 
+/// A reason that links claims names them: four claimants paid into one bank account, and the
+/// fifth claim's referral (the shipped rule on shared payee accounts) lists the four earlier
+/// claims, and no claim that shares nothing with it.
+fn link_reasons_name_the_linked_claims(store: Store) {
+    let svc = service_on(store);
+    let mut base = weir::demo_data::generate(1, 3).remove(0).claim;
+    base.parties = vec![weir::claim::Party {
+        role: weir::claim::Role::PayeeAccount,
+        id: "B-SHARED".into(),
+    }];
+    base.address_id = None;
+    let mut ids = Vec::new();
+    for i in 0..6 {
+        let mut c = base.clone();
+        c.claim_id = format!("C-LINK-{i}");
+        c.claimant_id = format!("K-LINK-{i}");
+        c.policy_id = format!("P-LINK-{i}");
+        c.reported_at = base.reported_at + chrono::Duration::days(i);
+        if i == 4 {
+            // Shares nothing: another account.
+            c.parties[0].id = "B-OTHER".into();
+        }
+        ids.push(c.claim_id.clone());
+        let (rec, _) = svc.decide(c, now()).unwrap();
+        if i == 5 {
+            let reason = rec
+                .reasons
+                .iter()
+                .find(|r| r.code == "rule.shared-payee-account")
+                .unwrap_or_else(|| panic!("no shared-account reason: {:?}", rec.reasons));
+            for id in &ids[..4] {
+                assert!(
+                    reason.text.contains(id.as_str()),
+                    "{id} missing: {}",
+                    reason.text
+                );
+            }
+            assert!(!reason.text.contains("C-LINK-4"), "{}", reason.text);
+            assert!(
+                !reason.text.contains("C-LINK-5"),
+                "names itself: {}",
+                reason.text
+            );
+        }
+    }
+}
+
 macro_rules! suite {
     ($($name:ident),* $(,)?) => {
         mod sled_backend {
@@ -417,6 +464,7 @@ suite!(
     holds_purges_and_person_records,
     locks_serialise_shared_keys,
     linked_claims_by_party,
+    link_reasons_name_the_linked_claims,
 );
 
 /// The sled store's in-memory entity histories answer exactly as its index does, through

@@ -492,10 +492,8 @@ impl Claim {
         keys
     }
 
-    /// The entities that link claims, which a decision also locks. Context kinds are left out,
-    /// so that every claim of a region is not decided one at a time; two claims of one region
-    /// decided at the same instant may then each miss the other in the region's count (a
-    /// count of hundreds, read only for surges).
+    /// The entities that link claims: claimant, policy, address and parties (not the context
+    /// kinds, which many unrelated claims share).
     pub fn link_keys(&self) -> Vec<String> {
         let mut keys = vec![
             format!("claimant:{}", self.claimant_id),

@@ -318,7 +318,7 @@ catalogue! {
         |v, _| format!("address shared with {} in the last year", others(v, "claimant"));
     LinkedLong = "linked_claimants_365d", High, "distinct other claimants sharing a bank account, witness, third party or address with this claim in 365 days",
         |v, _| format!("linked through a shared bank account, witness, third party or address to {} in the last year", others(v, "claimant"));
-    LinkedAmount = "linked_log_amount_365d", Never, "log of 1 + the amounts of other claimants' claims in 365 days linked to this one through a shared bank account, witness, third party or address, or through two of its parties named together: the exposure a review of this claim opens",
+    LinkedAmount = "linked_log_amount_365d", Never, "log of 1 + the amounts of other claimants' claims in 365 days linked to this one through a shared bank account, witness, third party or address, or through two of its parties named together when at least half of the smaller party's claimants came with the other too: the exposure a review of this claim opens",
         |v, _| format!("linked claims worth {} in the last year", fmt_amount(v.exp_m1()));
     LinkedShort = "linked_claimants_30d", High, "as linked_claimants_365d, in the last 30 days",
         |v, _| format!("linked through a shared bank account, witness, third party or address to {} in the last 30 days", others(v, "claimant"));
@@ -502,6 +502,8 @@ struct Buffers {
     linked_claims: Vec<(u64, f64)>,
     storm: Vec<u64>,
     by_claim: Vec<Vec<(u64, u64, f64)>>,
+    party_claimants: Vec<f64>,
+    pair_claims: Vec<(u64, f64)>,
 }
 
 thread_local! {
@@ -528,6 +530,8 @@ fn compute_with(claim: &Claim, history: &dyn HistoryView, bufs: &mut Buffers) ->
         linked_claims,
         storm,
         by_claim,
+        party_claimants,
+        pair_claims,
     } = bufs;
     for l in [&mut *linked_long, &mut *linked_short, &mut *storm] {
         l.clear();
@@ -622,9 +626,9 @@ fn compute_with(claim: &Claim, history: &dyn HistoryView, bufs: &mut Buffers) ->
             let past = pw.claimants(me, scratch, |e| e.at < short_from && not_storm(e));
             let usual =
                 past * SHORT_WINDOW_DAYS as f64 / (LONG_WINDOW_DAYS - SHORT_WINDOW_DAYS) as f64;
-            // In a regional surge without an event code, a firm's burst cannot be told from
-            // the surge's: it counts as no burst at all.
-            let burst = if regional_surge && storm.is_empty() {
+            // In a regional surge a firm's burst cannot be told from the surge's (untagged
+            // storm claims count in it, tagged or not this one): it counts as no burst at all.
+            let burst = if regional_surge {
                 1.0
             } else {
                 (recent + 1.0) / (usual + 1.0)
@@ -679,6 +683,10 @@ fn compute_with(claim: &Claim, history: &dyn HistoryView, bufs: &mut Buffers) ->
         c.dedup_by_key(|e| e.0);
     }
     let by_claim = &by_claim[..windows.len()];
+    // Distinct other claimants of each party, to tell a pair that works together (a clinic and
+    // a solicitor whose claimants are mostly the same) from two busy firms that meet by chance.
+    party_claimants.clear();
+    party_claimants.extend(windows.iter().map(|pw| pw.claimants(me, scratch, |_| true)));
     let mut best_pair = 0.0f64;
     for i in 0..by_claim.len() {
         for j in i + 1..by_claim.len() {
@@ -688,6 +696,7 @@ fn compute_with(claim: &Claim, history: &dyn HistoryView, bufs: &mut Buffers) ->
                 continue;
             }
             scratch.clear();
+            pair_claims.clear();
             let (a, bb) = (&by_claim[i], &by_claim[j]);
             let (mut x, mut y) = (0, 0);
             while x < a.len() && y < bb.len() {
@@ -697,7 +706,7 @@ fn compute_with(claim: &Claim, history: &dyn HistoryView, bufs: &mut Buffers) ->
                     std::cmp::Ordering::Equal => {
                         if a[x].1 != me {
                             scratch.push(a[x].1);
-                            linked_claims.push((a[x].0, a[x].2));
+                            pair_claims.push((a[x].0, a[x].2));
                         }
                         x += 1;
                         y += 1;
@@ -706,7 +715,13 @@ fn compute_with(claim: &Claim, history: &dyn HistoryView, bufs: &mut Buffers) ->
             }
             scratch.sort_unstable();
             scratch.dedup();
-            best_pair = best_pair.max(scratch.len() as f64);
+            let together = scratch.len() as f64;
+            best_pair = best_pair.max(together);
+            // The pair's claims count in the exposure only when at least half of the smaller
+            // party's claimants came with the other party too.
+            if together > 0.0 && 2.0 * together >= party_claimants[i].min(party_claimants[j]) {
+                linked_claims.extend_from_slice(pair_claims);
+            }
         }
     }
     v[F::PairClaimants as usize] = best_pair;

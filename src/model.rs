@@ -397,6 +397,36 @@ impl Trees {
         }
     }
 
+    /// A loaded booster must be walkable: every split's children later in its own tree (so no
+    /// walk can loop or leave the tree), finite splits and leaf values.
+    fn check(booster: &GradientBooster) -> Result<(), String> {
+        for (t, tree) in booster.trees.iter().enumerate() {
+            let n = tree.nodes.len();
+            if n == 0 {
+                return Err(format!("tree {t} has no nodes"));
+            }
+            for (i, node) in tree.nodes.iter().enumerate() {
+                if node.is_leaf {
+                    if !node.weight_value.is_finite() {
+                        return Err(format!("tree {t} node {i}: leaf value is not finite"));
+                    }
+                    continue;
+                }
+                let ok = |c: usize| c > i && c < n;
+                if !(ok(node.left_child) && ok(node.right_child) && ok(node.missing_node)) {
+                    return Err(format!("tree {t} node {i}: a child outside the tree"));
+                }
+                if node.split_value.is_nan() {
+                    return Err(format!("tree {t} node {i}: split value is not a number"));
+                }
+            }
+        }
+        if !booster.base_score.is_finite() {
+            return Err("base score is not finite".into());
+        }
+        Ok(())
+    }
+
     pub fn margins(&self, x: ArrayView2<f64>) -> Vec<f64> {
         x.outer_iter()
             .map(|r| match r.as_slice() {
@@ -441,9 +471,9 @@ impl Trees {
     }
 
     pub fn from_value(v: &serde_json::Value) -> Result<Trees, String> {
-        GradientBooster::deserialize(v)
-            .map(Trees::from_booster)
-            .map_err(|e| e.to_string())
+        let booster = GradientBooster::deserialize(v).map_err(|e| e.to_string())?;
+        Trees::check(&booster)?;
+        Ok(Trees::from_booster(booster))
     }
 }
 
@@ -592,6 +622,8 @@ impl Isotonic {
         let (x, y) = (&self.x, &self.y);
         match x.len() {
             0 => 0.5,
+            // A margin that is not a number refers nobody: the lowest probability.
+            _ if margin.is_nan() => y[0],
             _ if margin <= x[0] => y[0],
             n if margin >= x[n - 1] => y[n - 1],
             _ => {
@@ -617,10 +649,17 @@ pub enum Calibration {
 }
 
 impl Calibration {
+    /// Fit `kind`; a Platt fit whose slope is not positive (a candidate that ranks worse than
+    /// chance out of fold) cannot be a monotone calibration, and isotonic is fitted instead.
     pub fn fit(kind: CalibrationKind, margins: &[f64], y: &[bool]) -> Calibration {
-        match kind {
+        let platt = match kind {
             CalibrationKind::Platt => Calibration::Platt(Platt::fit(margins, y)),
-            CalibrationKind::Isotonic => Calibration::Isotonic(Isotonic::fit(margins, y)),
+            CalibrationKind::Isotonic => return Calibration::Isotonic(Isotonic::fit(margins, y)),
+        };
+        if platt.problem().is_some() {
+            Calibration::Isotonic(Isotonic::fit(margins, y))
+        } else {
+            platt
         }
     }
 
@@ -962,6 +1001,14 @@ impl Model {
         let index =
             features::resolve(&artifact.features).map_err(ArtifactError::UnknownFeatures)?;
         let d = index.len();
+        let mut distinct = index.clone();
+        distinct.sort_unstable();
+        distinct.dedup();
+        if distinct.len() != d {
+            return Err(ArtifactError::Shape(
+                "features: a feature is named twice".into(),
+            ));
+        }
         let shape = |what: &str, got: usize| {
             Err(ArtifactError::Shape(format!(
                 "{what} has {got} entries for {d} features"

@@ -891,10 +891,11 @@ impl Backend for PgStore {
 
     fn history_view<'a>(&'a self, claim: &Claim) -> Result<Box<dyn HistoryView + 'a>, StoreError> {
         // A region's list is long and features read only its last weeks: fetch those alone.
-        let (regions, keys): (Vec<String>, Vec<String>) = claim
-            .entity_keys()
-            .into_iter()
-            .partition(|k| k.starts_with(crate::claim::REGION_KIND));
+        let (regions, keys): (Vec<String>, Vec<String>) =
+            claim.entity_keys().into_iter().partition(|k| {
+                k.strip_prefix(crate::claim::REGION_KIND)
+                    .is_some_and(|rest| rest.starts_with(':'))
+            });
         let t = claim.event_time();
         let from = t - LONG_WINDOW_DAYS * DAY;
         let region_from = t - crate::features::REGION_WINDOW_DAYS * DAY;

@@ -19,8 +19,9 @@
 //!    `routing.audit_share`, drawn from a hash of its id (stable across replays, independent
 //!    of its features), so precision and recall can be estimated without selection bias.
 //!
-//! Priority = (probability × exposure − review cost) × the fired rules' `priority_factor`s,
-//! plus their `add_priority`, in currency units. Exposure is the claimed amount plus the amounts
+//! Priority = probability × exposure × the fired rules' `priority_factor`s − review cost,
+//! plus their `add_priority`, in currency units (a factor scales the expected saving, never the
+//! cost, so it cannot push a claim down). Exposure is the claimed amount plus the amounts
 //! of other claimants' claims linked to it (features `linked_log_amount_365d`), so a ring's
 //! members count with the ring's exposure. Audit claims have priority 0: they were drawn at
 //! random, and their order means nothing.
@@ -496,7 +497,7 @@ pub fn route(rules: &RuleSet, routing: &Routing, x: &Inputs) -> Routed {
     let priority = if queue == Queue::Audit {
         0.0
     } else {
-        (x.probability * exposure - routing.review_cost) * factor + points
+        x.probability * exposure * factor - routing.review_cost + points
     };
     Routed {
         queue,
@@ -570,8 +571,8 @@ add_priority = 100
         fv[features::index_of("payee_account_claimants_365d").unwrap()] = 4.0;
         fv[features::index_of("linked_log_amount_365d").unwrap()] = 20_000f64.ln_1p();
         let r = route(&rs, &Routing::default(), &inputs(&fv, 0.5, 10_000.0));
-        // (0.5 x (10,000 + 20,000) - 300) x 3 + 100, by hand.
-        assert!((r.priority - 44_200.0).abs() < 1e-6, "{}", r.priority);
+        // 0.5 x (10,000 + 20,000) x 3 - 300 + 100, by hand.
+        assert!((r.priority - 44_800.0).abs() < 1e-6, "{}", r.priority);
         // The expected value that routes the claim is the claim's own.
         assert!((r.expected_value - 4_700.0).abs() < 1e-9);
         let bad = RuleSet::from_toml(&text.replace("= 3\n", "= 0\n"), "t").unwrap_err();

@@ -263,7 +263,9 @@ impl Service {
         let hash = content_hash(&claim);
         // Held until the decision is written: no other writer touches this claim or any
         // entity it names meanwhile (across instances on a shared store).
-        let mut keys = claim.link_keys();
+        // Context keys (region, catastrophe event) are locked too: the sled store's history
+        // cache keeps a list only when no writer of that entity ran while it was loaded.
+        let mut keys = claim.entity_keys();
         keys.push(claim_lock_key(&claim.claim_id));
         let _guard = self.store.lock(&keys)?;
         let head = self.store.head(&claim.claim_id)?;
@@ -485,29 +487,49 @@ impl Service {
             let Some((kinds, days, together)) = names.iter().find_map(|n| linking(n)) else {
                 continue;
             };
-            let mut ids: Vec<String> = Vec::new();
+            let from = t - days * features::DAY;
+            // The claimant's own earlier claims are not links: the features count other
+            // claimants only.
+            let own: std::collections::HashSet<String> = self
+                .store
+                .history_claim_ids(&format!("claimant:{}", claim.claimant_id), from, t)?
+                .into_iter()
+                .collect();
+            let mut lists: Vec<Vec<String>> = Vec::new();
             for k in keys
                 .iter()
                 .filter(|k| kinds.contains(&k.split_once(':').map_or("", |(kind, _)| kind)))
             {
-                ids.extend(
-                    self.store
-                        .history_claim_ids(k, t - days * features::DAY, t)?
-                        .into_iter()
-                        .filter(|id| *id != claim.claim_id),
-                );
+                let mut ids: Vec<String> = self
+                    .store
+                    .history_claim_ids(k, from, t)?
+                    .into_iter()
+                    .filter(|id| *id != claim.claim_id && !own.contains(id))
+                    .collect();
+                ids.sort();
+                ids.dedup();
+                lists.push(ids);
             }
-            ids.sort();
-            if together {
-                // Claims naming two of this claim's parties: listed under two keys or more.
-                let mut kept = Vec::new();
-                for w in ids.chunk_by(|a, b| a == b) {
-                    if w.len() >= 2 {
-                        kept.push(w[0].clone());
+            let mut ids: Vec<String> = if together {
+                // The pair of parties named together on the most claims, as the feature reads.
+                let mut best: Vec<String> = Vec::new();
+                for i in 0..lists.len() {
+                    for j in i + 1..lists.len() {
+                        let both: Vec<String> = lists[i]
+                            .iter()
+                            .filter(|id| lists[j].binary_search(id).is_ok())
+                            .cloned()
+                            .collect();
+                        if both.len() > best.len() {
+                            best = both;
+                        }
                     }
                 }
-                ids = kept;
-            }
+                best
+            } else {
+                lists.concat()
+            };
+            ids.sort();
             ids.dedup();
             if !ids.is_empty() {
                 let shown: Vec<&str> = ids.iter().take(5).map(String::as_str).collect();

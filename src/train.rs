@@ -479,15 +479,18 @@ fn mean(v: &[f64]) -> f64 {
     v.iter().sum::<f64>() / v.len().max(1) as f64
 }
 
-/// Fold figures of out-of-fold scores (any monotone score: margins or probabilities).
+/// Fold figures of a candidate's out-of-fold margins. They are read on the calibrated
+/// probabilities the candidate would serve (each fold calibrated without itself), since a
+/// calibration with flat stretches (isotonic) ties claims that the margins told apart.
 fn score_folds(
     candidate: Candidate,
-    scores: &[f64],
     margins: Vec<f64>,
     y: &[bool],
     folds: &[(usize, usize)],
     share: f64,
 ) -> CvResult {
+    let (calibration, calibration_brier, oof_probs) = cross_fitted_calibration(&margins, y, folds);
+    let scores = &oof_probs;
     let (mut prec, mut ap, mut auc) = (Vec::new(), Vec::new(), Vec::new());
     for &(a, b) in folds {
         let (s, t) = (&scores[a..b], &y[a..b]);
@@ -503,7 +506,6 @@ fn score_folds(
     let m = mean(&auc);
     let k = auc.len().max(1) as f64;
     let sd = (auc.iter().map(|v| (v - m).powi(2)).sum::<f64>() / (k - 1.0).max(1.0)).sqrt();
-    let (calibration, calibration_brier, oof_probs) = cross_fitted_calibration(&margins, y, folds);
     CvResult {
         name: candidate.name(),
         candidate,
@@ -529,8 +531,13 @@ fn cross_validate(
     folds: &[(usize, usize)],
     share: f64,
 ) -> Result<CvResult, TrainError> {
-    let m = oof_margins(c, x, y, folds)?;
-    Ok(score_folds(c.clone(), &m.clone(), m, y, folds, share))
+    Ok(score_folds(
+        c.clone(),
+        oof_margins(c, x, y, folds)?,
+        y,
+        folds,
+        share,
+    ))
 }
 
 /// The blend of finished candidates: the mean of their cross-fitted probabilities, carried as
@@ -549,7 +556,7 @@ fn cross_validate_blend(
     let candidate = Candidate::Blend {
         members: members.iter().map(|m| m.candidate.clone()).collect(),
     };
-    score_folds(candidate, &margins.clone(), margins, y, folds, share)
+    score_folds(candidate, margins, y, folds, share)
 }
 
 /// The champion: the highest mean precision at capacity; candidates within one referral per

@@ -389,8 +389,8 @@ fn linked_claims_by_party(store: Store) {
 }
 
 /// A reason that links claims names them: four claimants paid into one bank account, and the
-/// fifth claim's referral (the shipped rule on shared payee accounts) lists the four earlier
-/// claims, and no claim that shares nothing with it.
+/// next claim's referral (the shipped rule on shared payee accounts) lists their four claims,
+/// and not its own claimant's earlier claim into the same account.
 fn link_reasons_name_the_linked_claims(store: Store) {
     let svc = service_on(store);
     let mut base = weir::demo_data::generate(1, 3).remove(0).claim;
@@ -407,8 +407,9 @@ fn link_reasons_name_the_linked_claims(store: Store) {
         c.policy_id = format!("P-LINK-{i}");
         c.reported_at = base.reported_at + chrono::Duration::days(i);
         if i == 4 {
-            // Shares nothing: another account.
-            c.parties[0].id = "B-OTHER".into();
+            // The last claimant's own earlier claim into the same account: not a link.
+            c.claimant_id = "K-LINK-5".into();
+            c.policy_id = "P-LINK-5".into();
         }
         ids.push(c.claim_id.clone());
         let (rec, _) = svc.decide(c, now()).unwrap();

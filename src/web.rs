@@ -318,8 +318,12 @@ async fn logout(
     r
 }
 
+/// An amount as an investigator reads it: currency, thousands separators, cents.
 fn money(currency: &str, x: f64) -> String {
-    format!("{} {:.2}", esc(currency), x)
+    let all = (x.abs() * 100.0).round();
+    let whole = crate::features::fmt_amount((all / 100.0).trunc());
+    let sign = if x < 0.0 && all > 0.0 { "-" } else { "" };
+    format!("{} {sign}{whole}.{:02}", esc(currency), all as u64 % 100)
 }
 
 async fn queues_page(State(st): State<AppState>, headers: HeaderMap) -> Response {
@@ -495,11 +499,11 @@ fn render_claim(
     }
     let _ = write!(
         b,
-        "<div class=\"grid\"><section class=\"card\" aria-labelledby=\"dec\"><h2 id=\"dec\">Decision</h2><dl><dt>Queue</dt><dd>{}</dd><dt>Probability the referral is worth it</dt><dd>{:.0}%</dd><dt>Outlier score</dt><dd>{:.2} (share of similar training claims closer to their cluster's centre)</dd><dt>Priority</dt><dd>{:.0}</dd><dt>Decided</dt><dd>{} by model {} and rules {}</dd></dl><h3>Why it was referred</h3><ul class=\"reasons\">",
+        "<div class=\"grid\"><section class=\"card\" aria-labelledby=\"dec\"><h2 id=\"dec\">Decision</h2><dl><dt>Queue</dt><dd>{}</dd><dt>Probability the referral is worth it</dt><dd>{:.0}%</dd><dt>Outlier score</dt><dd>{:.2} (share of similar training claims closer to their cluster's centre)</dd><dt>Priority</dt><dd>{} (expected saving with linked exposure, in the claim's currency)</dd><dt>Decided</dt><dd>{} by model {} and rules {}</dd></dl><h3>Why it was referred</h3><ul class=\"reasons\">",
         queue_title(last.queue),
         last.model_probability * 100.0,
         last.outlier_score,
-        last.priority,
+        crate::features::fmt_amount(last.priority),
         when(&last.decided_at),
         esc(&last.model_version),
         esc(&last.rules_version)
@@ -606,13 +610,13 @@ fn render_claim(
         for o in &history {
             let _ = write!(
                 b,
-                "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td class=\"num\">{:.2}</td><td class=\"num\">{:.2}</td><td>{}</td></tr>",
+                "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td class=\"num\">{}</td><td class=\"num\">{}</td><td>{}</td></tr>",
                 o.revision,
                 outcome_words(o.report.outcome),
                 o.report.adjudicated_on,
                 esc(&o.report.decided_by),
-                o.report.amount_saved,
-                o.report.amount_recovered,
+                crate::features::fmt_amount(o.report.amount_saved),
+                crate::features::fmt_amount(o.report.amount_recovered),
                 esc(o.posted_by.as_deref().unwrap_or("—"))
             );
         }
@@ -856,4 +860,15 @@ async fn monitoring_page(State(st): State<AppState>, headers: HeaderMap) -> Resp
         f(compare.agreement, true)
     );
     page("Monitoring", Some((&p, &csrf)), &b)
+}
+
+#[cfg(test)]
+mod tests {
+    #[test]
+    fn money_has_separators_and_carries_cents() {
+        assert_eq!(super::money("EUR", 322_965.333), "EUR 322,965.33");
+        assert_eq!(super::money("GBP", 0.999), "GBP 1.00");
+        assert_eq!(super::money("EUR", 1_000_000.0), "EUR 1,000,000.00");
+        assert_eq!(super::money("EUR", -12.5), "EUR -12.50");
+    }
 }

@@ -465,6 +465,25 @@ impl Window {
         });
     }
 
+    /// Other claimants' events of a personal identifier: their claimants (in the long and the
+    /// short window) and their claims with amounts, the links and the exposure.
+    fn link_into(
+        &self,
+        me: u64,
+        short_from: i64,
+        long: &mut Vec<u64>,
+        short: &mut Vec<u64>,
+        claims: &mut Vec<(u64, f64)>,
+    ) {
+        for e in self.events.iter().filter(|e| e.claimant != me) {
+            long.push(e.claimant);
+            claims.push((e.claim, e.amount));
+            if e.at >= short_from {
+                short.push(e.claimant);
+            }
+        }
+    }
+
     /// Distinct claimants other than `claimant` among events passing `keep`.
     fn claimants(
         &self,
@@ -644,26 +663,14 @@ fn compute_with(claim: &Claim, history: &dyn HistoryView, bufs: &mut Buffers) ->
         if long_i.is_some() {
             let c = pw.claimants(me, scratch, |_| true);
             v[recent_i as usize] = v[recent_i as usize].max(c);
-            for e in pw.events.iter().filter(|e| e.claimant != me) {
-                linked_long.push(e.claimant);
-                linked_claims.push((e.claim, e.amount));
-                if e.at >= short_from {
-                    linked_short.push(e.claimant);
-                }
-            }
+            pw.link_into(me, short_from, linked_long, linked_short, linked_claims);
         }
     }
     let windows = &windows[..claim.parties.len()];
     if let Some(addr) = &claim.address_id {
         load(w, "address", addr);
         v[F::AddressClaimants as usize] = w.claimants(me, scratch, |_| true);
-        for e in w.events.iter().filter(|e| e.claimant != me) {
-            linked_long.push(e.claimant);
-            linked_claims.push((e.claim, e.amount));
-            if e.at >= short_from {
-                linked_short.push(e.claimant);
-            }
-        }
+        w.link_into(me, short_from, linked_long, linked_short, linked_claims);
     }
     for l in [&mut *linked_long, &mut *linked_short] {
         l.sort_unstable();

@@ -559,15 +559,16 @@ fn cross_validate_blend(
     score_folds(candidate, margins, y, folds, share)
 }
 
-/// The champion: the highest mean precision at capacity; candidates within one referral per
-/// fold of it (1 / the mean k) count as tied, and among them the highest mean average
-/// precision wins. Returns its index and the sentence that says why.
-pub fn select(cv: &[CvResult], tie: f64) -> (usize, String) {
-    let best_prec = cv
+/// The winner among the candidates `among` (indices into `cv`) by the rule of [`select`],
+/// with the indices tied with the best and the best mean precision at capacity.
+fn winner(cv: &[CvResult], among: &[usize], tie: f64) -> (usize, Vec<usize>, f64) {
+    let best_prec = among
         .iter()
-        .map(|r| r.mean_precision_at_capacity)
+        .map(|&i| cv[i].mean_precision_at_capacity)
         .fold(f64::NEG_INFINITY, f64::max);
-    let tied: Vec<usize> = (0..cv.len())
+    let tied: Vec<usize> = among
+        .iter()
+        .copied()
         .filter(|&i| cv[i].mean_precision_at_capacity >= best_prec - tie)
         .collect();
     let win = tied
@@ -580,6 +581,15 @@ pub fn select(cv: &[CvResult], tie: f64) -> (usize, String) {
                 .then(b.cmp(&a)) // on an exact tie, the earlier (simpler) candidate
         })
         .unwrap_or(0);
+    (win, tied, best_prec)
+}
+
+/// The champion: the highest mean precision at capacity; candidates within one referral per
+/// fold of it (1 / the mean k) count as tied, and among them the highest mean average
+/// precision wins. Returns its index and the sentence that says why.
+pub fn select(cv: &[CvResult], tie: f64) -> (usize, String) {
+    let all: Vec<usize> = (0..cv.len()).collect();
+    let (win, tied, best_prec) = winner(cv, &all, tie);
     let r = &cv[win];
     let why = if tied.len() == 1 {
         format!(
@@ -937,8 +947,7 @@ pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trai
     let tie = 1.0 / mean_k.max(1.0);
     let best_of = |pred: &dyn Fn(&Candidate) -> bool| -> Option<usize> {
         let idx: Vec<usize> = (0..cv.len()).filter(|&i| pred(&cv[i].candidate)).collect();
-        let sub: Vec<CvResult> = idx.iter().map(|&i| cv[i].clone()).collect();
-        (!sub.is_empty()).then(|| idx[select(&sub, tie).0])
+        (!idx.is_empty()).then(|| winner(&cv, &idx, tie).0)
     };
     let best_lr = best_of(&Candidate::is_logistic)
         .ok_or_else(|| TrainError::NotEnough("no logistic regression candidate".into()))?;

@@ -78,25 +78,36 @@ fn scoring(c: &mut Criterion) {
     let (model, champion, rules, history, claims) = setup();
     let counting = Counting(&history, std::cell::Cell::new(0));
     for cl in claims.iter().take(1000) {
-        features::compute(cl, &counting);
+        features::compute(cl, &counting, &weir::graph::Summary::default());
     }
     println!(
         "history events visited per claim (mean over the 1,000 benchmarked claims): {:.0}",
         counting.1.get() as f64 / 1000.0
     );
     let routing = Routing::default();
+    // Linked as the champion was trained (caps measured on its training part).
+    let graph = champion.artifact.graph.clone();
+    println!("graph caps: {:?}", graph.caps);
     let fvs: Vec<FeatureVector> = claims
         .iter()
         .take(1000)
-        .map(|cl| features::compute(cl, &history))
+        .map(|cl| features::compute_in_memory(cl, &history, &graph))
         .collect();
     let mut g = c.benchmark_group("score");
     g.throughput(Throughput::Elements(1));
     let mut i = 0usize;
+    // The claims graph alone: the claim's component (what features_with_history adds to the
+    // history features).
+    g.bench_function("graph_component", |b| {
+        b.iter(|| {
+            i = (i + 1) % 1000;
+            black_box(weir::graph::component_of_new(&history, &graph, &claims[i]).is_ok())
+        })
+    });
     g.bench_function("features_with_history", |b| {
         b.iter(|| {
             i = (i + 1) % 1000;
-            black_box(features::compute(&claims[i], &history))
+            black_box(features::compute_in_memory(&claims[i], &history, &graph))
         })
     });
     g.bench_function("model_and_outliers", |b| {
@@ -124,7 +135,7 @@ fn scoring(c: &mut Criterion) {
     });
     // Features, model with reasons, outlier score and rules: what intake runs per claim.
     let whole = |m: &Model, cl: &weir::claim::Claim| {
-        let fv = features::compute(cl, &history);
+        let fv = features::compute_in_memory(cl, &history, &graph);
         let s = m.score(&fv);
         rules::route(
             &rules,
@@ -165,7 +176,7 @@ pub fn matrix(n: usize) -> (Array2<f64>, Vec<bool>) {
             outcome: Some(d.outcome),
         })
         .collect();
-    let fvs = train::featurise(&mut rows, false);
+    let fvs = train::featurise(&mut rows, &weir::graph::Settings::default(), false);
     let x = Array2::from_shape_fn((fvs.len(), N_FEATURES), |(r, c)| fvs[r][c]);
     let y = rows
         .iter()

@@ -58,7 +58,7 @@ fn main() -> anyhow::Result<()> {
 
     // Features in time order with history, by the training code itself.
     let t = Instant::now();
-    let fvs = weir::train::featurise(&mut rows, false);
+    let fvs = weir::train::featurise(&mut rows, &weir::graph::Settings::default(), false);
     let x = Array2::from_shape_fn((fvs.len(), N_FEATURES), |(r, c)| fvs[r][c]);
     drop(fvs);
     let y: Vec<bool> = rows

@@ -83,6 +83,49 @@ pub struct Training {
     /// Also try the mean of the best logistic and the best trees candidate's calibrated
     /// probabilities; it competes like any candidate.
     pub blend: bool,
+    /// The claims graph (see `graph`): its window and hub caps travel in the model artifact.
+    pub graph: GraphConfig,
+}
+
+/// How the claims graph is built; training turns it into [`crate::graph::Settings`] with
+/// per-kind caps measured on its own training part.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct GraphConfig {
+    /// Days of the trailing window a component holds.
+    pub window_days: i64,
+    /// A party naming more claims within the window than this many times its kind's median
+    /// is a hub and links nothing ...
+    pub hub_factor: f64,
+    /// ... unless it names no more than this many.
+    pub hub_floor: u32,
+    /// Most claims a component is followed to.
+    pub max_claims: usize,
+}
+
+impl Default for GraphConfig {
+    fn default() -> Self {
+        let d = crate::graph::Settings::default();
+        GraphConfig {
+            window_days: d.window_days,
+            hub_factor: d.hub_factor,
+            hub_floor: d.hub_floor,
+            max_claims: d.max_claims,
+        }
+    }
+}
+
+impl GraphConfig {
+    /// Settings without caps (every kind at the floor) until training measures them.
+    pub fn settings(&self) -> crate::graph::Settings {
+        crate::graph::Settings {
+            window_days: self.window_days,
+            hub_factor: self.hub_factor,
+            hub_floor: self.hub_floor,
+            max_claims: self.max_claims,
+            caps: Default::default(),
+        }
+    }
 }
 
 impl Default for Training {
@@ -112,6 +155,7 @@ impl Default for Training {
             seed: 20_251_202,
             trees: Trees::default(),
             blend: true,
+            graph: GraphConfig::default(),
         }
     }
 }
@@ -509,6 +553,9 @@ impl Config {
             p.push(
                 "training.trees.min_leaf_weight: must be a non-empty list of numbers >= 0".into(),
             );
+        }
+        for problem in t.graph.settings().problems() {
+            p.push(format!("training.{problem}"));
         }
         if tr.enabled && tr.search == 0 {
             p.push("training.trees.search: must be at least 1 when trees are enabled".into());

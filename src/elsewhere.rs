@@ -74,7 +74,7 @@ pub fn evaluate(
     routing: &Routing,
 ) -> Result<Elsewhere, TrainError> {
     let model = Model::new(artifact.clone())?;
-    let full = train::featurise(&mut loaded.rows, false);
+    let full = train::featurise(&mut loaded.rows, &artifact.graph, false);
     let rows = &loaded.rows;
     let labelled: Vec<usize> = (0..rows.len())
         .filter(|&i| rows[i].outcome.and_then(Outcome::label).is_some())

@@ -112,10 +112,24 @@ impl std::hash::Hasher for FnvHasher {
 
 pub type FnvBuild = std::hash::BuildHasherDefault<FnvHasher>;
 
-/// History held in memory, per entity sorted by time.
+/// History held in memory, per entity sorted by time, with each claim's links for the claims
+/// graph ([`crate::graph::GraphSource`]). Entity keys are held once; a claim's links are
+/// indices into them (at a million claims, strings per claim would cost hundreds of MB).
 #[derive(Debug, Default)]
 pub struct MemoryHistory {
-    by_entity: HashMap<String, Vec<HistoryEvent>, FnvBuild>,
+    by_entity: HashMap<Box<str>, u32, FnvBuild>,
+    lists: Vec<Vec<HistoryEvent>>,
+    names: Vec<Box<str>>,
+    claims: HashMap<u64, StoredNode, FnvBuild>,
+}
+
+#[derive(Debug)]
+struct StoredNode {
+    claim_id: Box<str>,
+    at: i64,
+    claimant: u64,
+    amount: f64,
+    keys: Box<[u32]>,
 }
 
 impl MemoryHistory {
@@ -123,23 +137,56 @@ impl MemoryHistory {
         Self::default()
     }
 
+    fn entity(&mut self, key: &str) -> u32 {
+        if let Some(&i) = self.by_entity.get(key) {
+            return i;
+        }
+        let i = self.lists.len() as u32;
+        self.by_entity.insert(key.into(), i);
+        self.lists.push(Vec::new());
+        self.names.push(key.into());
+        i
+    }
+
     /// Add a claim's events. Claims may come in any order; each entity's list stays sorted.
+    /// (A training file names each claim once; a claim recorded twice keeps both events.)
     pub fn record(&mut self, claim: &Claim) {
+        let h = stable_hash(&claim.claim_id);
+        let mut link_ids = Vec::new();
+        let links = claim.link_keys();
         for (key, ev) in events_of(claim) {
-            let list = self.by_entity.entry(key).or_default();
+            let i = self.entity(&key);
+            let list = &mut self.lists[i as usize];
             let pos = list.partition_point(|e| e.at <= ev.at);
             list.insert(pos, ev);
+            if links.binary_search(&key).is_ok() {
+                link_ids.push(i);
+            }
         }
+        self.claims.insert(
+            h,
+            StoredNode {
+                claim_id: claim.claim_id.as_str().into(),
+                at: claim.event_time(),
+                claimant: stable_hash(&claim.claimant_id),
+                amount: claim.claimed_amount,
+                keys: link_ids.into(),
+            },
+        );
     }
 
     pub fn entities(&self) -> usize {
-        self.by_entity.len()
+        self.lists.len()
+    }
+
+    fn list(&self, entity: &str) -> Option<&Vec<HistoryEvent>> {
+        self.by_entity.get(entity).map(|&i| &self.lists[i as usize])
     }
 }
 
 impl HistoryView for MemoryHistory {
     fn for_each_event(&self, entity: &str, from: i64, to: i64, f: &mut dyn FnMut(&HistoryEvent)) {
-        if let Some(list) = self.by_entity.get(entity) {
+        if let Some(list) = self.list(entity) {
             let start = list.partition_point(|e| e.at < from);
             for e in list[start..].iter().take_while(|e| e.at < to) {
                 f(e);
@@ -148,10 +195,54 @@ impl HistoryView for MemoryHistory {
     }
 
     fn count_events(&self, entity: &str, from: i64, to: i64) -> usize {
-        self.by_entity.get(entity).map_or(0, |list| {
+        self.list(entity).map_or(0, |list| {
             let end = list.partition_point(|e| e.at < to);
             end.saturating_sub(list.partition_point(|e| e.at < from))
         })
+    }
+}
+
+impl crate::graph::GraphSource for MemoryHistory {
+    fn events(
+        &self,
+        keys: &[(String, usize)],
+        from: i64,
+        to: i64,
+    ) -> Result<Vec<Vec<HistoryEvent>>, crate::graph::SourceError> {
+        Ok(keys
+            .iter()
+            .map(|(k, limit)| {
+                let mut v = Vec::new();
+                if let Some(list) = self.list(k) {
+                    let start = list.partition_point(|e| e.at < from);
+                    v.extend(list[start..].iter().take_while(|e| e.at < to).take(*limit));
+                }
+                v
+            })
+            .collect())
+    }
+
+    fn nodes(
+        &self,
+        claims: &[u64],
+    ) -> Result<Vec<Option<crate::graph::ClaimNode>>, crate::graph::SourceError> {
+        Ok(claims
+            .iter()
+            .map(|h| {
+                self.claims.get(h).map(|n| crate::graph::ClaimNode {
+                    claim: *h,
+                    claim_id: n.claim_id.to_string(),
+                    at: n.at,
+                    claimant: n.claimant,
+                    amount: n.amount,
+                    keys: n
+                        .keys
+                        .iter()
+                        .map(|&i| self.names[i as usize].to_string())
+                        .collect(),
+                })
+            })
+            .collect())
     }
 }
 
@@ -324,6 +415,13 @@ catalogue! {
         |v, _| format!("linked through a shared bank account, witness, third party or address to {} in the last 30 days", others(v, "claimant"));
     PairClaimants = "party_pair_claimants_365d", High, "distinct other claimants on claims naming two of this claim's parties together in 365 days (highest over pairs)",
         |v, _| format!("two of this claim's parties appear together on claims of {} in the last year", others(v, "claimant"));
+    RingClaims = "ring_claims_365d", High, "other claims in this claim's component of the claims graph within 365 days: claims linked through a shared personal identifier (claimant, policy, address, bank account, witness, third party) or through two firms named together, followed from claim to claim; parties above their kind's hub cap link nothing (see the graph module)",
+        |v, f| format!("tied through shared parties to {} by {} in the last year ({} of them in the last 30 days)",
+            others(v, "claim"), others(f[F::RingClaimants as usize], "claimant"), n(f[F::RingRecent as usize]));
+    RingClaimants = "ring_claimants_365d", High, "distinct other claimants in this claim's component of the claims graph within 365 days",
+        |v, f| format!("tied through shared parties to {} on {} in the last year", others(v, "claimant"), others(f[F::RingClaims as usize], "claim"));
+    RingRecent = "ring_claims_30d", High, "claims of this claim's component of the claims graph reported in the last 30 days before it: how fast the component grows",
+        |v, f| format!("{} of the {} tied to this one through shared parties were reported in the last 30 days", n(v), others(f[F::RingClaims as usize], "claim"));
     SimilarAmounts = "party_similar_amount_share", High, "share of a party's earlier claims in 365 days within 15% of this claimed amount (highest over parties with at least 3 earlier claims)",
         |v, _| format!("{:.0}% of the earlier claims naming one of its parties this year were within 15% of this amount", v * 100.0);
     AmountVsParty = "amount_vs_party_typical", High, "log of the claimed amount over the median amount of the earlier claims naming the same party (the party with the most earlier claims, at least 3)",
@@ -376,6 +474,7 @@ pub fn family(index: usize) -> usize {
         &[F::DaysLossToReport, F::LateReport],
         &[F::ClaimantShort, F::ClaimantLong, F::PolicyLong],
         &[F::RoundAmount, F::BelowRound],
+        &[F::RingClaims, F::RingClaimants, F::RingRecent],
     ];
     FAMILIES
         .iter()
@@ -529,13 +628,36 @@ thread_local! {
     static BUFFERS: std::cell::RefCell<Buffers> = std::cell::RefCell::new(Buffers::default());
 }
 
-/// Compute every catalogue feature of `claim` against `history`.
-pub fn compute(claim: &Claim, history: &dyn HistoryView) -> FeatureVector {
-    BUFFERS.with(|b| match b.try_borrow_mut() {
+/// Compute every catalogue feature of `claim` against `history`, with `ring` the summary of
+/// its component of the claims graph ([`crate::graph::Component::summary`]).
+pub fn compute(
+    claim: &Claim,
+    history: &dyn HistoryView,
+    ring: &crate::graph::Summary,
+) -> FeatureVector {
+    let mut v = BUFFERS.with(|b| match b.try_borrow_mut() {
         Ok(mut bufs) => compute_with(claim, history, &mut bufs),
         // Re-entered from inside a history view (never today): fresh buffers.
         Err(_) => compute_with(claim, history, &mut Buffers::default()),
-    })
+    });
+    v[F::RingClaims as usize] = ring.claims;
+    v[F::RingClaimants as usize] = ring.claimants;
+    v[F::RingRecent as usize] = ring.recent;
+    v
+}
+
+/// [`compute`] against history in memory, which answers the claims graph too: what training
+/// runs, claim after claim in time order.
+pub fn compute_in_memory(
+    claim: &Claim,
+    history: &MemoryHistory,
+    graph: &crate::graph::Settings,
+) -> FeatureVector {
+    // History in memory never fails to answer.
+    let ring = crate::graph::component_of_new(history, graph, claim)
+        .map(|c| c.summary(stable_hash(&claim.claim_id), claim.event_time()))
+        .unwrap_or_default();
+    compute(claim, history, &ring)
 }
 
 fn compute_with(claim: &Claim, history: &dyn HistoryView, bufs: &mut Buffers) -> FeatureVector {
@@ -827,7 +949,7 @@ mod tests {
         for c in [&c1, &c2, &c3] {
             h.record(c);
         }
-        let v = compute(&c4, &h);
+        let v = compute_in_memory(&c4, &h, &crate::graph::Settings::default());
         // R1 earlier: C1 by K1 (144 days before), C2 by K2 (24 days), C3 by K3 (5 days). K2 is
         // this claimant, so the other claimants in 30 days are K3 alone, and before that K1.
         assert_eq!(get(&v, "repairer_claimants_30d"), 1.0);
@@ -842,13 +964,13 @@ mod tests {
         assert!((get(&v, "amount_vs_party_typical") - (500f64 / 2000.0).ln()).abs() < 1e-12);
         // A later claim is invisible, and a claim never sees itself.
         h.record(&c4);
-        let v3 = compute(&c3, &h);
+        let v3 = compute_in_memory(&c3, &h, &crate::graph::Settings::default());
         assert_eq!(
             get(&v3, "repairer_claimants_30d"),
             1.0,
             "K2 (C2) 19 days before"
         );
-        let v4 = compute(&c4, &h);
+        let v4 = compute_in_memory(&c4, &h, &crate::graph::Settings::default());
         assert_eq!(v4, v, "recording the claim itself changes nothing");
     }
 
@@ -888,7 +1010,7 @@ mod tests {
             json!([{"role": "payee_account", "id": "B1"}, {"role": "medical_provider", "id": "M1"}, {"role": "attorney", "id": "A1"}]),
             4950.0,
         );
-        let v = compute(&c, &h);
+        let v = compute_in_memory(&c, &h, &crate::graph::Settings::default());
         assert_eq!(get(&v, "payee_account_claimants_365d"), 2.0);
         assert_eq!(
             get(&v, "linked_claimants_365d"),
@@ -918,7 +1040,11 @@ mod tests {
         let mut c = claim("C1", "K1", "2025-01-11T10:00:00Z", "R1", 2500.0);
         c.loss_date = chrono::NaiveDate::from_ymd_opt(2025, 1, 1).unwrap();
         c.loss_time = chrono::NaiveTime::from_hms_opt(23, 0, 0);
-        let v = compute(&c, &MemoryHistory::new());
+        let v = compute_in_memory(
+            &c,
+            &MemoryHistory::new(),
+            &crate::graph::Settings::default(),
+        );
         assert_eq!(get(&v, "amount_to_sum_insured"), 0.25);
         assert_eq!(get(&v, "days_policy_start_to_loss"), 366.0);
         assert_eq!(get(&v, "days_loss_to_report"), 10.0);

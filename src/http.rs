@@ -84,6 +84,22 @@ pub const ROUTE_ROLES: &[(&str, &str, &[Role])] = &[
         "/v1/queues/{queue}/items/{claim_id}/release",
         &[Role::Investigator],
     ),
+    ("GET", "/v1/rings", &[Role::Investigator, Role::Analyst]),
+    (
+        "GET",
+        "/v1/rings/{ring_id}",
+        &[Role::Investigator, Role::Analyst],
+    ),
+    (
+        "GET",
+        "/v1/rings/{ring_id}/graphml",
+        &[Role::Investigator, Role::Analyst],
+    ),
+    (
+        "GET",
+        "/v1/claims/{claim_id}/ring",
+        &[Role::Investigator, Role::Analyst],
+    ),
     ("GET", "/v1/monitor/quality", &[Role::Analyst]),
     ("GET", "/v1/monitor/drift", &[Role::Analyst]),
     ("GET", "/v1/monitor/fairness", &[Role::Analyst]),
@@ -658,6 +674,139 @@ async fn list_queue(
         "limit": limit,
         "items": items,
     })))
+}
+
+#[derive(Deserialize)]
+struct LimitQuery {
+    limit: Option<String>,
+}
+
+/// Run store work that may wait on the network off the async threads.
+async fn blocking<T: Send + 'static>(
+    f: impl FnOnce() -> Result<T, ServiceError> + Send + 'static,
+) -> Result<T, AppError> {
+    tokio::task::spawn_blocking(f)
+        .await
+        .map_err(|e| AppError::Internal(e.to_string()))?
+        .map_err(AppError::from)
+}
+
+/// What the rings read-outs say about how rings are found and ranked.
+fn ring_method(svc: &Service) -> serde_json::Value {
+    let g = svc.model().artifact.graph.clone();
+    json!({
+        "links": "claims sharing a personal identifier (claimant, policy, address, payee account, witness, third party), or two firms (repairer, medical provider, attorney) named together",
+        "window_days": g.window_days,
+        "hub_caps": g.caps,
+        "hub_rule": format!("a party naming more claims in the window than {} times its kind's median (at least {}) links nothing", g.hub_factor, g.hub_floor),
+        "max_claims": g.max_claims,
+        "score": "(distinct claimants - 1) x (1 + share reported in the last 30 days) x (1 + share referred or confirmed as fraud) x (1 + log10(1 + total amount / 10,000))",
+        "caution": crate::web::CAUTION,
+    })
+}
+
+async fn list_rings(
+    State(st): State<AppState>,
+    Query(q): Query<LimitQuery>,
+) -> Result<Json<serde_json::Value>, AppError> {
+    let limit = number("limit", q.limit.as_ref(), 20, 100)?;
+    let svc = st.svc.clone();
+    let now = chrono::Utc::now().timestamp();
+    let (as_of, rings) = blocking(move || svc.rings(now, limit)).await?;
+    Ok(Json(json!({
+        "as_of": chrono::DateTime::from_timestamp(as_of, 0).map(|d| d.to_rfc3339()),
+        "method": ring_method(&st.svc),
+        "rings": rings,
+    })))
+}
+
+async fn ring_by_id(st: &AppState, id: String) -> Result<crate::rings::Ring, AppError> {
+    check_id("ring_id", &id)?;
+    let svc = st.svc.clone();
+    let now = chrono::Utc::now().timestamp();
+    let key = id.clone();
+    blocking(move || svc.ring(&key, now))
+        .await?
+        .ok_or(AppError::NotFound { what: "ring", id })
+}
+
+async fn get_ring(
+    State(st): State<AppState>,
+    Path(id): Path<String>,
+) -> Result<Json<serde_json::Value>, AppError> {
+    let ring = ring_by_id(&st, id).await?;
+    Ok(Json(
+        json!({ "method": ring_method(&st.svc), "ring": ring }),
+    ))
+}
+
+async fn get_claim_ring(
+    State(st): State<AppState>,
+    Path(id): Path<String>,
+) -> Result<Json<serde_json::Value>, AppError> {
+    check_id("claim_id", &id)?;
+    let svc = st.svc.clone();
+    let now = chrono::Utc::now().timestamp();
+    let key = id.clone();
+    let ring = blocking(move || {
+        let as_of = svc.rings_as_of(now)?;
+        match svc.component_of(&key, as_of)? {
+            Some(c) => Ok(Some(svc.ring_view(&c, as_of)?)),
+            None => Ok(None),
+        }
+    })
+    .await?
+    .ok_or(AppError::NotFound { what: "claim", id })?;
+    Ok(Json(
+        json!({ "method": ring_method(&st.svc), "ring": ring }),
+    ))
+}
+
+/// A ring as GraphML (an open standard read by graph tools).
+async fn get_ring_graphml(
+    State(st): State<AppState>,
+    Path(id): Path<String>,
+) -> Result<Response, AppError> {
+    check_id("ring_id", &id)?;
+    let svc = st.svc.clone();
+    let now = chrono::Utc::now().timestamp();
+    let key = id.clone();
+    let body = blocking(move || {
+        let Some(r) = svc.store.ring(&key)? else {
+            return Ok(None);
+        };
+        let as_of = svc.rings_as_of(now)?;
+        let Some(c) = svc.component_of(&r.seed, as_of)? else {
+            return Ok(None);
+        };
+        let view = svc.ring_view(&c, as_of)?;
+        let facts: std::collections::HashMap<&str, &crate::rings::Member> = view
+            .members
+            .iter()
+            .map(|m| (m.claim_id.as_str(), m))
+            .collect();
+        Ok(Some(crate::graph::graphml(&c, &|n| {
+            let m = facts.get(n.claim_id.as_str());
+            crate::graph::MemberFacts {
+                queue: m
+                    .and_then(|m| m.queue)
+                    .map(|q| q.as_str().to_string())
+                    .unwrap_or_default(),
+                outcome: m
+                    .and_then(|m| m.outcome)
+                    .map(|o| o.as_str().to_string())
+                    .unwrap_or_default(),
+            }
+        })))
+    })
+    .await?
+    .ok_or(AppError::NotFound { what: "ring", id })?;
+    let mut r = Response::new(Body::from(body));
+    r.headers_mut().insert(
+        header::CONTENT_TYPE,
+        HeaderValue::from_static("application/graphml+xml"),
+    );
+    Ok(r)
 }
 
 /// Read a JSON request body: content type, size limit, strict parse (duplicate keys refused).
@@ -1236,6 +1385,10 @@ pub fn app(svc: Service, settings: HttpSettings) -> Router {
         .route("/v1/claims/{claim_id}", get(get_claim))
         .route("/v1/claims/{claim_id}/outcome", post(post_outcome))
         .route("/v1/queues", get(list_queues))
+        .route("/v1/rings", get(list_rings))
+        .route("/v1/rings/{ring_id}", get(get_ring))
+        .route("/v1/rings/{ring_id}/graphml", get(get_ring_graphml))
+        .route("/v1/claims/{claim_id}/ring", get(get_claim_ring))
         .route("/v1/monitor/quality", get(monitor_quality))
         .route("/v1/monitor/drift", get(monitor_drift))
         .route("/v1/monitor/fairness", get(monitor_fairness))

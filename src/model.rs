@@ -19,8 +19,9 @@ use std::path::Path;
 
 pub const ARTIFACT_FORMAT: &str = "weir-model";
 /// Version 2: calibration is Platt or isotonic, the classifier may be a blend, and tree
-/// settings carry the minimum leaf weight. Version 1 files are refused with that message.
-pub const ARTIFACT_FORMAT_VERSION: u32 = 2;
+/// settings carry the minimum leaf weight. Version 3: the claims graph's settings (window,
+/// hub caps) travel with the model. Older files are refused with that message.
+pub const ARTIFACT_FORMAT_VERSION: u32 = 3;
 
 /// Per-feature centring and scaling (population standard deviation, as scikit-learn's
 /// `StandardScaler`); a constant feature gets scale 1 so it maps to 0.
@@ -788,6 +789,9 @@ pub struct ModelArtifact {
     pub outliers: OutlierModel,
     pub baselines: Baselines,
     pub training: TrainingInfo,
+    /// How the claims graph links claims (window, hub caps measured in training): serving
+    /// builds the graph features exactly as training did.
+    pub graph: crate::graph::Settings,
 }
 
 #[derive(Debug, thiserror::Error)]
@@ -1000,6 +1004,10 @@ impl Model {
     pub fn new(artifact: ModelArtifact) -> Result<Model, ArtifactError> {
         let index =
             features::resolve(&artifact.features).map_err(ArtifactError::UnknownFeatures)?;
+        let graph = artifact.graph.problems();
+        if !graph.is_empty() {
+            return Err(ArtifactError::Shape(graph.join("; ")));
+        }
         let d = index.len();
         let mut distinct = index.clone();
         distinct.sort_unstable();

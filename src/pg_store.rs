@@ -34,8 +34,10 @@ use std::collections::HashMap;
 use std::sync::{Condvar, Mutex};
 
 /// Migrations, in order. A shipped migration is never edited: add the next one.
-pub const MIGRATIONS: &[(i32, &str, &str)] =
-    &[(1, "initial", include_str!("../migrations/0001_initial.sql"))];
+pub const MIGRATIONS: &[(i32, &str, &str)] = &[
+    (1, "initial", include_str!("../migrations/0001_initial.sql")),
+    (2, "graph", include_str!("../migrations/0002_graph.sql")),
+];
 
 /// Advisory lock key that serialises migrations across instances (any fixed number).
 const MIGRATION_LOCK: i64 = 0x7765_6972_6d69_6772;
@@ -254,6 +256,86 @@ impl HistoryView for Prefetched {
                 f(e);
             }
         }
+    }
+}
+
+impl crate::graph::GraphSource for PgStore {
+    /// One query per call: every key with its own limit (a lateral join), in the order sled
+    /// reads (time, then claim hash as unsigned).
+    fn events(
+        &self,
+        keys: &[(String, usize)],
+        from: i64,
+        to: i64,
+    ) -> Result<Vec<Vec<HistoryEvent>>, crate::graph::SourceError> {
+        if keys.is_empty() {
+            return Ok(Vec::new());
+        }
+        let names: Vec<&str> = keys.iter().map(|(k, _)| k.as_str()).collect();
+        let limits: Vec<i64> = keys.iter().map(|(_, l)| *l as i64).collect();
+        let mut out: Vec<Vec<HistoryEvent>> = vec![Vec::new(); keys.len()];
+        let rows = self
+            .with(|c| {
+                c.query(
+                    "SELECT k.i::bigint, h.at, h.claim_hash, h.claimant, h.amount
+                     FROM unnest($1::text[], $2::bigint[]) WITH ORDINALITY AS k(entity, lim, i)
+                     CROSS JOIN LATERAL (
+                        SELECT at, claim_hash, claimant, amount FROM history
+                        WHERE entity = k.entity AND at >= $3 AND at < $4
+                        ORDER BY at, claim_hash
+                        LIMIT k.lim) h",
+                    &[&names, &limits, &from, &to],
+                )
+            })
+            .map_err(|e| crate::graph::SourceError(e.to_string()))?;
+        for r in rows {
+            let i = r.get::<_, i64>(0) as usize - 1;
+            out[i].push(HistoryEvent {
+                at: r.get(1),
+                claim: r.get::<_, i64>(2) as u64,
+                claimant: r.get::<_, i64>(3) as u64,
+                amount: r.get(4),
+            });
+        }
+        for v in &mut out {
+            v.sort_by_key(|e| (e.at, e.claim));
+        }
+        Ok(out)
+    }
+
+    fn nodes(
+        &self,
+        claims: &[u64],
+    ) -> Result<Vec<Option<crate::graph::ClaimNode>>, crate::graph::SourceError> {
+        if claims.is_empty() {
+            return Ok(Vec::new());
+        }
+        let hashes: Vec<i64> = claims.iter().map(|&h| h as i64).collect();
+        let rows = self
+            .with(|c| {
+                c.query(
+                    "SELECT claim_hash, claim_id, at, claimant, amount, keys FROM claim_nodes
+                     WHERE claim_hash = ANY($1)",
+                    &[&hashes],
+                )
+            })
+            .map_err(|e| crate::graph::SourceError(e.to_string()))?;
+        let mut found: HashMap<u64, crate::graph::ClaimNode> = HashMap::new();
+        for r in rows {
+            let h = r.get::<_, i64>(0) as u64;
+            found.insert(
+                h,
+                crate::graph::ClaimNode {
+                    claim: h,
+                    claim_id: r.get(1),
+                    at: r.get(2),
+                    claimant: r.get::<_, i64>(3) as u64,
+                    amount: r.get(4),
+                    keys: r.get(5),
+                },
+            );
+        }
+        Ok(claims.iter().map(|h| found.remove(h)).collect())
     }
 }
 
@@ -585,6 +667,35 @@ impl Backend for PgStore {
                 &[&ents, &ats, &hs, &claimants, &amounts, &rec.claim_id],
             )
             .map_err(pg)?;
+            let node = crate::graph::ClaimNode::of(&rec.claim);
+            tx.execute(
+                "INSERT INTO claim_nodes (claim_hash, claim_id, at, claimant, amount, keys)
+                 VALUES ($1, $2, $3, $4, $5, $6)
+                 ON CONFLICT (claim_hash) DO UPDATE
+                 SET claim_id = EXCLUDED.claim_id, at = EXCLUDED.at, claimant = EXCLUDED.claimant,
+                     amount = EXCLUDED.amount, keys = EXCLUDED.keys",
+                &[
+                    &(node.claim as i64),
+                    &node.claim_id,
+                    &node.at,
+                    &(node.claimant as i64),
+                    &node.amount,
+                    &node.keys,
+                ],
+            )
+            .map_err(pg)?;
+            if let Some(c) = rec.component.as_ref().filter(|c| c.claims >= 2) {
+                let ring = crate::graph::RingRecord {
+                    seed: rec.claim_id.clone(),
+                    component: c.clone(),
+                };
+                tx.execute(
+                    "INSERT INTO rings (id, last_at, record) VALUES ($1, $2, $3)
+                     ON CONFLICT (id) DO UPDATE SET last_at = EXCLUDED.last_at, record = EXCLUDED.record",
+                    &[&c.id, &c.last_at, &encode(&ring)],
+                )
+                .map_err(pg)?;
+            }
             let rev = rec.revision as i32;
             let inserted = tx
                 .execute(
@@ -870,6 +981,11 @@ impl Backend for PgStore {
                 .map_err(pg)?;
             tx.execute("DELETE FROM queue_items WHERE claim_id = $1", &[&claim_id])
                 .map_err(pg)?;
+            tx.execute(
+                "DELETE FROM claim_nodes WHERE claim_hash = $1",
+                &[&(stable_hash(claim_id) as i64)],
+            )
+            .map_err(pg)?;
             let mut events = 0;
             if let Some(r) = &latest {
                 let ev = events_of(&r.claim);
@@ -920,6 +1036,32 @@ impl Backend for PgStore {
                 v.sort_by_key(|e| (e.at, e.claim));
             }
             Ok(Box::new(Prefetched(map)) as Box<dyn HistoryView + 'a>)
+        })
+    }
+
+    fn graph(&self) -> &dyn crate::graph::GraphSource {
+        self
+    }
+
+    fn rings(&self, from: i64) -> Result<Vec<crate::graph::RingRecord>, StoreError> {
+        self.with_store(|c| {
+            c.query(
+                "SELECT record FROM rings WHERE last_at >= $1 ORDER BY id",
+                &[&from],
+            )
+            .map_err(pg)?
+            .iter()
+            .map(|r| decode("ring record", &r.get::<_, String>(0)))
+            .collect()
+        })
+    }
+
+    fn ring(&self, id: &str) -> Result<Option<crate::graph::RingRecord>, StoreError> {
+        self.with_store(|c| {
+            c.query_opt("SELECT record FROM rings WHERE id = $1", &[&id])
+                .map_err(pg)?
+                .map(|r| decode("ring record", &r.get::<_, String>(0)))
+                .transpose()
         })
     }
 

@@ -10,6 +10,7 @@
 use crate::claim::Claim;
 use crate::features::{self, CATALOGUE};
 use crate::feedback::{OutcomeRecord, OutcomeReport};
+use crate::graph;
 use crate::model::{Model, Reason};
 use crate::rules::{self, Queue, Routing, RuleSet};
 use crate::store::{DecisionRecord, IntakeStatus, QueueItem, ShadowScore, Store, StoreError};
@@ -102,7 +103,7 @@ pub struct Service {
 pub const STREAM_CALLER: &str = "stream";
 
 /// The lock key of a claim's own records (entity keys are `kind:id`; this cannot clash).
-fn claim_lock_key(claim_id: &str) -> String {
+pub(crate) fn claim_lock_key(claim_id: &str) -> String {
     format!("claim-record:{claim_id}")
 }
 
@@ -300,7 +301,16 @@ impl Service {
         let t0 = Instant::now();
         let model = self.model();
         let rules = self.rules();
-        let fv = features::compute(&claim, &*self.store.history_view(&claim)?);
+        // The claim's component of the claims graph, linked as the champion was trained.
+        let component = graph::component_of_new(self.store.graph(), &model.artifact.graph, &claim)
+            .map_err(StoreError::from)?;
+        let seed = features::stable_hash(&claim.claim_id);
+        let t = claim.event_time();
+        let fv = features::compute(
+            &claim,
+            &*self.store.history_view(&claim)?,
+            &component.summary(seed, t),
+        );
         let scored = model.score(&fv);
         let challenger = self.challenger().map(|(c, _)| {
             let s = c.score(&fv);
@@ -377,6 +387,7 @@ impl Service {
         }
         if routed.queue != Queue::NoReview {
             self.name_linked_claims(&claim, &rules, &mut reasons)?;
+            name_ring_ties(&component, seed, &rules, &mut reasons);
         }
         self.metrics
             .scoring_seconds
@@ -406,6 +417,8 @@ impl Service {
             challenger,
             submitted_by: submitted_by.map(String::from),
             stream_sequence,
+            component: Some(component.reference(t)),
+            revised_because: None,
         };
         // A claim already adjudicated is re-scored for the record but not queued again.
         // (An outcome needs a stored claim: a new claim cannot have one.)
@@ -633,6 +646,15 @@ impl Service {
                 (rec, true)
             }
         };
+        // Open claims linked to a confirmed fraud move up their queue, with a reason and an
+        // audit revision each. Run again on a repeated post (it changes nothing then), so a
+        // post retried after a failure here still raises them.
+        if rec.report.outcome == crate::feedback::Outcome::FraudConfirmed {
+            let raised = self.raise_linked(claim_id, now)?;
+            if !raised.is_empty() {
+                tracing::info!(claim_id, raised = raised.len(), "linked open claims raised");
+            }
+        }
         self.store.durable().await;
         Ok(Some((rec, created)))
     }
@@ -1007,5 +1029,71 @@ impl Service {
             drift: self.drift(now)?,
             daily_capacity,
         })
+    }
+}
+
+/// Say which parties tie a claim to its component, and the claims they tie it to, on a
+/// reason that reads the component ("... in the last year; through payee account B-1:
+/// C-000017, C-000024; attorney A-5 and repairer R-3: C-000031").
+fn name_ring_ties(c: &graph::Component, seed: u64, rules: &RuleSet, reasons: &mut [Reason]) {
+    let reads_ring = |name: &str| name.starts_with("ring_");
+    let ids: std::collections::HashMap<u64, &str> = c
+        .members
+        .iter()
+        .map(|m| (m.claim, m.claim_id.as_str()))
+        .collect();
+    let words = ring_tie_words(c, seed, &ids);
+    if words.is_empty() {
+        return;
+    }
+    for r in reasons.iter_mut() {
+        let reads = match r.code.strip_prefix("rule.") {
+            Some(id) => rules
+                .rules
+                .iter()
+                .filter(|rule| rule.id == id)
+                .any(|rule| rule.features().any(|i| reads_ring(CATALOGUE[i].name))),
+            None => r.code.strip_prefix("feature.").is_some_and(reads_ring),
+        };
+        if reads {
+            r.text = format!("{}; {words}", r.text);
+        }
+    }
+}
+
+/// "through payee account B-1: C-000017, C-000024; attorney A-5: C-000031" for the ties of
+/// `seed`, strongest first, at most three parties and five claims each.
+pub fn ring_tie_words(
+    c: &graph::Component,
+    seed: u64,
+    ids: &std::collections::HashMap<u64, &str>,
+) -> String {
+    let ties = c.ties_of(seed);
+    let mut parts = Vec::new();
+    for t in ties.iter().take(3) {
+        let others: Vec<&str> = t
+            .claims
+            .iter()
+            .filter(|h| **h != seed)
+            .filter_map(|h| ids.get(h).copied())
+            .collect();
+        let mut list = others
+            .iter()
+            .take(5)
+            .copied()
+            .collect::<Vec<_>>()
+            .join(", ");
+        if others.len() > 5 {
+            list.push_str(&format!(" and {} more", others.len() - 5));
+        }
+        parts.push(format!("{}: {list}", graph::party_words(&t.key)));
+    }
+    if ties.len() > 3 {
+        parts.push(format!("and {} more parties", ties.len() - 3));
+    }
+    if parts.is_empty() {
+        String::new()
+    } else {
+        format!("through {}", parts.join("; "))
     }
 }

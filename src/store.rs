@@ -51,6 +51,8 @@ pub enum StoreError {
     Corrupt { what: String, detail: String },
     #[error("store flush failed: {0}")]
     Flush(String),
+    #[error(transparent)]
+    Graph(#[from] crate::graph::SourceError),
 }
 
 impl<E: std::fmt::Display> From<TransactionError<E>> for StoreError {
@@ -102,6 +104,13 @@ pub struct DecisionRecord {
     /// Sequence of the stream message this revision came from, when it came from the stream.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub stream_sequence: Option<u64>,
+    /// The claim's component of the claims graph when it was decided.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub component: Option<crate::graph::ComponentRef>,
+    /// Why this revision was written when the claim itself did not change (a linked claim
+    /// confirmed as fraud raised its priority).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub revised_because: Option<String>,
 }
 
 /// A legal hold: the claim is exempt from retention purges until the hold is lifted.
@@ -569,6 +578,10 @@ pub struct SledStore {
     outcomes: sled::Tree,
     outcome_revisions: sled::Tree,
     holds: sled::Tree,
+    /// Each claim's links for the claims graph, by claim hash ([`crate::graph::ClaimNode`]).
+    claim_nodes: sled::Tree,
+    /// Components decided into, by id ([`crate::graph::RingRecord`]).
+    rings: sled::Tree,
     pub flusher: Arc<Flusher>,
     /// Items in each queue (by [`Queue::ALL`] position), counted once at open and kept by
     /// every write that adds or removes an item: sled's own count is a full scan, and an
@@ -724,6 +737,12 @@ pub trait Backend: Send + Sync {
     ) -> Result<Vec<String>, StoreError>;
     /// The whole history index, sorted (for tests and for comparing runs).
     fn history_dump(&self) -> Result<Vec<HistoryRow>, StoreError>;
+    /// The claims graph over the stored history (each claim's links, written by `record`).
+    fn graph(&self) -> &dyn crate::graph::GraphSource;
+    /// Stored components whose last claim was reported at or after `from`.
+    fn rings(&self, from: i64) -> Result<Vec<crate::graph::RingRecord>, StoreError>;
+    /// One stored component by id.
+    fn ring(&self, id: &str) -> Result<Option<crate::graph::RingRecord>, StoreError>;
 
     /// Write every claim (latest revision) as a training-file line with its latest outcome,
     /// or `unadjudicated`: the input of the next `weir train`. Returns (claims, with outcome).
@@ -888,6 +907,8 @@ impl SledStore {
             outcomes: db.open_tree("outcomes")?,
             outcome_revisions: db.open_tree("outcome_revisions")?,
             holds: db.open_tree("holds")?,
+            claim_nodes: db.open_tree("claim_nodes")?,
+            rings: db.open_tree("rings")?,
             db,
             flusher: Flusher::new(),
             depths: Arc::default(),
@@ -1005,14 +1026,31 @@ impl Backend for SledStore {
         });
         let record = encode(rec);
         let item_bytes = item.map(encode);
+        let node = crate::graph::ClaimNode::of(&rec.claim);
+        let node_bytes = node.encode();
+        let ring = rec.component.as_ref().filter(|c| c.claims >= 2).map(|c| {
+            (
+                c.id.clone(),
+                encode(&crate::graph::RingRecord {
+                    seed: rec.claim_id.clone(),
+                    component: c.clone(),
+                }),
+            )
+        });
         let removed = (
             &self.claims,
             &self.revisions,
             &self.history,
             &self.queue_items,
             &self.queue_rank,
+            &self.claim_nodes,
+            &self.rings,
         )
-            .transaction(|(claims, revisions, history, items, rank)| {
+            .transaction(|(claims, revisions, history, items, rank, nodes, rings)| {
+                nodes.insert(&node.claim.to_be_bytes(), node_bytes.as_slice())?;
+                if let Some((id, bytes)) = &ring {
+                    rings.insert(id.as_bytes(), bytes.as_slice())?;
+                }
                 for (entity, e) in &old_events {
                     history.remove(history_key(entity, e.at, e.claim))?;
                 }
@@ -1269,14 +1307,16 @@ impl Backend for SledStore {
             &self.outcomes,
             &self.outcome_revisions,
             &self.holds,
+            &self.claim_nodes,
         )
             .transaction(
-                |(claims, revisions, history, items, rank, outcomes, out_revs, holds)| {
+                |(claims, revisions, history, items, rank, outcomes, out_revs, holds, nodes)| {
                     // A hold set while this purge was being prepared wins.
                     if holds.get(claim_id.as_bytes())?.is_some() {
                         return Err(ConflictableTransactionError::Abort("held".to_string()));
                     }
                     claims.remove(claim_id.as_bytes())?;
+                    nodes.remove(&crate::features::stable_hash(claim_id).to_be_bytes())?;
                     for k in &rev_keys {
                         revisions.remove(k)?;
                     }
@@ -1336,6 +1376,29 @@ impl Backend for SledStore {
             out.push(String::from_utf8_lossy(v.get(16..).unwrap_or_default()).into_owned());
         }
         Ok(out)
+    }
+
+    fn graph(&self) -> &dyn crate::graph::GraphSource {
+        self
+    }
+
+    fn rings(&self, from: i64) -> Result<Vec<crate::graph::RingRecord>, StoreError> {
+        let mut out = Vec::new();
+        for kv in self.rings.iter() {
+            let (_, v) = kv?;
+            let r: crate::graph::RingRecord = decode("ring record", &v)?;
+            if r.component.last_at >= from {
+                out.push(r);
+            }
+        }
+        Ok(out)
+    }
+
+    fn ring(&self, id: &str) -> Result<Option<crate::graph::RingRecord>, StoreError> {
+        self.rings
+            .get(id.as_bytes())?
+            .map(|v| decode("ring record", &v))
+            .transpose()
     }
 
     fn history_dump(&self) -> Result<Vec<HistoryRow>, StoreError> {
@@ -1414,6 +1477,44 @@ impl SledStore {
             });
         }
         complete
+    }
+}
+
+impl crate::graph::GraphSource for SledStore {
+    fn events(
+        &self,
+        keys: &[(String, usize)],
+        from: i64,
+        to: i64,
+    ) -> Result<Vec<Vec<HistoryEvent>>, crate::graph::SourceError> {
+        Ok(keys
+            .iter()
+            .map(|(k, limit)| {
+                let mut v = Vec::new();
+                self.for_each_event(k, from, to, &mut |e| {
+                    if v.len() < *limit {
+                        v.push(*e);
+                    }
+                });
+                v
+            })
+            .collect())
+    }
+
+    fn nodes(
+        &self,
+        claims: &[u64],
+    ) -> Result<Vec<Option<crate::graph::ClaimNode>>, crate::graph::SourceError> {
+        claims
+            .iter()
+            .map(|&h| {
+                let v = self
+                    .claim_nodes
+                    .get(h.to_be_bytes())
+                    .map_err(|e| crate::graph::SourceError(e.to_string()))?;
+                Ok(v.and_then(|b| crate::graph::ClaimNode::decode(h, &b)))
+            })
+            .collect()
     }
 }
 

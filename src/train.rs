@@ -172,20 +172,30 @@ pub fn load(reader: impl BufRead, bad: BadLines) -> Result<Loaded, TrainError> {
     Ok(out)
 }
 
-/// Rows in time order with their full feature vectors, computed as the service would.
-pub fn featurise(rows: &mut [TrainingRow], progress: bool) -> Vec<FeatureVector> {
+/// Rows in the time order training reads them.
+pub fn sort_rows(rows: &mut [TrainingRow]) {
     rows.sort_by(|a, b| {
         a.claim
             .reported_at
             .cmp(&b.claim.reported_at)
             .then_with(|| a.line.cmp(&b.line))
     });
+}
+
+/// Rows in time order with their full feature vectors, computed as the service would, with
+/// the claims graph built by `graph`.
+pub fn featurise(
+    rows: &mut [TrainingRow],
+    graph: &crate::graph::Settings,
+    progress: bool,
+) -> Vec<FeatureVector> {
+    sort_rows(rows);
     let bar = bar(rows.len() as u64, "features", progress);
     let mut history = MemoryHistory::new();
     let out = rows
         .iter()
         .map(|r| {
-            let v = features::compute(&r.claim, &history);
+            let v = features::compute_in_memory(&r.claim, &history, graph);
             history.record(&r.claim);
             bar.inc(1);
             v
@@ -829,6 +839,31 @@ fn duplicate_columns(x: ArrayView2<f64>) -> Vec<(usize, usize)> {
     out
 }
 
+/// Index (in time order) of the first held-out row: the cut `train` makes on labelled rows.
+fn test_share_cut(rows: &[TrainingRow], test_share: f64) -> usize {
+    let labelled: Vec<usize> = (0..rows.len())
+        .filter(|&i| rows[i].outcome.and_then(Outcome::label).is_some())
+        .collect();
+    let cut = ((labelled.len() as f64) * (1.0 - test_share)).round() as usize;
+    labelled.get(cut).copied().unwrap_or(rows.len())
+}
+
+/// The claims graph's settings, with hub caps measured on the window before the held-out
+/// part (the held-out claims never shape them). Rows in time order.
+pub fn graph_settings(
+    rows: &[TrainingRow],
+    first_held_out: usize,
+    config: &Config,
+) -> crate::graph::Settings {
+    let s = config.training.graph.settings();
+    let Some(last) = rows[..first_held_out.min(rows.len())].last() else {
+        return s;
+    };
+    let to = last.claim.event_time() + 1;
+    let from = to - s.window_days * features::DAY;
+    s.with_caps_from(rows[..first_held_out].iter().map(|r| &r.claim), from, to)
+}
+
 /// Train on loaded rows. `progress` shows bars on stderr.
 pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trained, TrainError> {
     config
@@ -838,7 +873,13 @@ pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trai
     let all_index = features::resolve(&all_names)
         .map_err(|m| TrainError::NotEnough(format!("unknown features {m:?}")))?;
     let t = &config.training;
-    let full = featurise(&mut loaded.rows, progress);
+    sort_rows(&mut loaded.rows);
+    let graph = graph_settings(
+        &loaded.rows,
+        test_share_cut(&loaded.rows, t.test_share),
+        config,
+    );
+    let full = featurise(&mut loaded.rows, &graph, progress);
     let rows = &loaded.rows;
 
     let mut unlabelled = std::collections::BTreeMap::new();
@@ -1088,6 +1129,7 @@ pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trai
                 test_positives: 0,
                 metrics: serde_json::Value::Null,
             },
+            graph: graph.clone(),
         };
         a.seal();
         a

@@ -127,7 +127,7 @@ dd{margin:0;overflow-wrap:anywhere}
 td.id,td.num{white-space:nowrap}
 ";
 
-const CAUTION: &str = "A referral is a prompt for human review, not a finding of fraud. Payment decisions follow the insurer's own procedures, fair claims handling rules and the law where it operates; use personal data and protected characteristics only as that law allows.";
+pub const CAUTION: &str = "A referral is a prompt for human review, not a finding of fraud. Payment decisions follow the insurer's own procedures, fair claims handling rules and the law where it operates; use personal data and protected characteristics only as that law allows.";
 
 fn page(title: &str, who: Option<(&Principal, &str)>, body: &str) -> Response {
     let mut out = String::new();

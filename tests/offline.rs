@@ -66,7 +66,7 @@ fn training_finds_the_planted_mechanisms_on_held_out_claims() {
     let split = chrono::DateTime::parse_from_rfc3339(&r.data.split_at).unwrap();
     let mut scored = Vec::new();
     for c in &claims {
-        let fv = features::compute(&c.claim, &history);
+        let fv = features::compute_in_memory(&c.claim, &history, &model.artifact.graph);
         history.record(&c.claim);
         if c.claim.reported_at >= split && c.outcome.label().is_some() {
             scored.push((model.score(&fv).probability, c.mechanism));
@@ -154,7 +154,11 @@ fn artifact_round_trips_exactly_and_refuses_tampering() {
     assert_eq!(back, trained.artifact);
     let a = Model::new(trained.artifact.clone()).unwrap();
     let b = Model::new(back).unwrap();
-    let fv = features::compute(&claims[100].claim, &MemoryHistory::new());
+    let fv = features::compute_in_memory(
+        &claims[100].claim,
+        &MemoryHistory::new(),
+        &weir::graph::Settings::default(),
+    );
     assert_eq!(a.score(&fv), b.score(&fv));
 
     let tampered = json.replacen("\"threshold\": ", "\"threshold\": 1", 1);

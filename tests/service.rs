@@ -544,12 +544,13 @@ async fn operations_routes_and_openapi_match_the_router() {
     // Every operation in the OpenAPI document exists on the router (not a route-404 or 405).
     let (_, _, doc) = call(&app, Method::GET, "/v1/openapi.json", None, vec![]).await;
     let paths = doc["paths"].as_object().unwrap();
-    assert_eq!(paths.len(), 24, "document and router list 24 paths");
+    assert_eq!(paths.len(), 28, "document and router list 28 paths");
     for (path, ops) in paths {
         let uri = path
             .replace("{claim_id}", "M-1")
             .replace("{queue}", "audit")
-            .replace("{claimant_id}", "K-1");
+            .replace("{claimant_id}", "K-1")
+            .replace("{ring_id}", "G-0000000000000001");
         for method in ops.as_object().unwrap().keys() {
             let m = Method::from_bytes(method.to_uppercase().as_bytes()).unwrap();
             let (status, _, p) = call(
@@ -1778,7 +1779,8 @@ async fn every_route_checks_its_roles() {
         let uri = path
             .replace("{claim_id}", "M-1")
             .replace("{queue}", "audit")
-            .replace("{claimant_id}", "K-1");
+            .replace("{claimant_id}", "K-1")
+            .replace("{ring_id}", "G-0000000000000001");
         let m = Method::from_bytes(method.as_bytes()).unwrap();
         let before = svc.store.tree_sizes();
         for key in [None, Some(unknown.as_str())] {

@@ -48,7 +48,7 @@ fn pg_store() -> Option<Store> {
 /// Create an empty database for this test and open a store on it (migrations applied).
 fn fresh_pg(url: &str) -> Store {
     let store = weir::pg_store::PgStore::connect(&fresh_database(url), 6).expect("connect");
-    assert_eq!(store.schema_versions().unwrap(), vec![1]);
+    assert_eq!(store.schema_versions().unwrap(), vec![1, 2]);
     // A second start applies nothing (migrations are recorded).
     assert!(store.migrate().unwrap().is_empty());
     Store::from_backend(Arc::new(store))
@@ -84,7 +84,7 @@ fn features_match_store_free_history(store: Store) {
     let mut reference = MemoryHistory::new();
     let mut expected_rows = BTreeSet::new();
     for d in &claims {
-        let want = features::compute(&d.claim, &reference);
+        let want = features::compute_in_memory(&d.claim, &reference, &svc.model().artifact.graph);
         reference.record(&d.claim);
         for (entity, e) in features::events_of(&d.claim) {
             expected_rows.insert((entity, e.at, e.claim));
@@ -547,9 +547,13 @@ fn sled_history_cache_answers_like_the_index() {
         .chain(latest.values().rev())
         .chain(latest.values())
     {
-        let want = features::compute(c, &reference);
+        let settings = stores[0].model().artifact.graph.clone();
+        let want = features::compute_in_memory(c, &reference, &settings);
         for svc in &stores {
-            let got = features::compute(c, &*svc.store.history_view(c).unwrap());
+            let ring = weir::graph::component_of_new(svc.store.graph(), &settings, c)
+                .unwrap()
+                .summary(features::stable_hash(&c.claim_id), c.event_time());
+            let got = features::compute(c, &*svc.store.history_view(c).unwrap(), &ring);
             assert_eq!(got.to_vec(), want.to_vec(), "probe {}", c.claim_id);
         }
     }

@@ -50,7 +50,7 @@ fn decide_all(artifact: &ModelArtifact, claims: &[DemoClaim]) -> Vec<Decided> {
     let mut history = MemoryHistory::new();
     let mut out = Vec::new();
     for d in claims {
-        let fv = features::compute(&d.claim, &history);
+        let fv = features::compute_in_memory(&d.claim, &history, &artifact.graph);
         history.record(&d.claim);
         let s = model.score(&fv);
         let routed = rules::route(

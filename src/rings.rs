@@ -307,10 +307,15 @@ impl Service {
                 .find(|r| r.revised_because.is_none())
                 .map_or(current.priority, |r| r.priority);
             let priority = base * factor;
-            if priority <= current.priority {
+            let text = raise_words(&c, m.claim, &confirmed, &ids);
+            // Nothing new: the same raise, said the same way (a repeated post).
+            let said = current
+                .reasons
+                .iter()
+                .any(|r| r.code == "ring.confirmed" && r.text == text);
+            if priority <= current.priority && said {
                 continue;
             }
-            let text = raise_words(&c, m.claim, &confirmed, &ids);
             let reason = crate::model::Reason {
                 code: "ring.confirmed".into(),
                 text,
@@ -319,7 +324,7 @@ impl Service {
             let mut rec = current.clone();
             rec.revision = head.revision + 1;
             rec.decided_at = now.to_rfc3339();
-            rec.priority = priority;
+            rec.priority = priority.max(current.priority);
             rec.reasons.retain(|r| r.code != "ring.confirmed");
             rec.reasons.insert(0, reason.clone());
             rec.revised_because = Some(format!(
@@ -330,7 +335,7 @@ impl Service {
             ));
             let mut it = item.clone();
             it.revision = rec.revision;
-            it.priority = priority;
+            it.priority = rec.priority;
             it.reasons.retain(|r| r.code != "ring.confirmed");
             it.reasons.insert(0, reason);
             it.reasons.truncate(3);

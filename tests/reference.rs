@@ -1,7 +1,7 @@
 //! weir's computations checked against outside oracles. Each fixture under
 //! `tests/reference/fixtures/` was written by `tests/reference/make_fixtures.py` with
-//! scikit-learn, SciPy and NumPy on data sets bundled in scikit-learn; each check names its
-//! source beside it.
+//! scikit-learn, SciPy, NumPy and networkx on data sets bundled in scikit-learn and networkx;
+//! each check names its source beside it.
 
 use ndarray::Array2;
 use serde_json::Value;
@@ -367,4 +367,233 @@ fn tree_walk_matches_forust_predictions_and_contributions() {
             close(*a, b, 1e-9, &format!("contribution[{i}][{j}]"));
         }
     }
+}
+
+/// A claim for the graph checks: its own claimant and policy, the parties given, reported
+/// `hour` hours into 2025.
+fn graph_claim(id: &str, hour: i64, parties: &[(&str, String)]) -> weir::claim::Claim {
+    let at = chrono::DateTime::from_timestamp(1_735_689_600 + hour * 3600, 0).unwrap();
+    let parties: Vec<Value> = parties
+        .iter()
+        .map(|(role, pid)| serde_json::json!({"role": role, "id": pid}))
+        .collect();
+    weir::claim::Claim::from_value(&serde_json::json!({
+        "claim_id": id, "policy_id": format!("P-{id}"), "claimant_id": format!("K-{id}"),
+        "line": "motor", "loss_date": "2024-12-30", "reported_at": at.to_rfc3339(),
+        "policy_start": "2024-01-01", "claimed_amount": 1000.0, "sum_insured": 20000.0,
+        "currency": "EUR", "parties": parties,
+        "circumstances": {"police_report": true, "injury": false, "total_loss": false, "theft": false}
+    }))
+    .unwrap_or_else(|e| panic!("{e:?}"))
+}
+
+fn ids_of(v: &Value) -> Vec<Vec<usize>> {
+    v.as_array()
+        .unwrap()
+        .iter()
+        .map(|g| {
+            g.as_array()
+                .unwrap()
+                .iter()
+                .map(|x| x.as_u64().unwrap() as usize)
+                .collect()
+        })
+        .collect()
+}
+
+/// Settings for the checks: only witnesses and third parties can be hubs (at `cap`).
+fn graph_settings(cap: u32) -> weir::graph::Settings {
+    weir::graph::Settings {
+        hub_floor: 1_000_000,
+        max_claims: 10_000,
+        caps: [
+            ("witness".to_string(), cap),
+            ("third_party".to_string(), cap),
+        ]
+        .into_iter()
+        .collect(),
+        ..weir::graph::Settings::default()
+    }
+}
+
+/// The groups of claims weir's components form, each sorted, as claim numbers.
+fn weir_groups(
+    history: &weir::features::MemoryHistory,
+    settings: &weir::graph::Settings,
+    n: usize,
+    prefix: &str,
+) -> Vec<Vec<usize>> {
+    use weir::graph::GraphSource;
+    let mut seen = vec![false; n];
+    let mut groups = Vec::new();
+    for i in 0..n {
+        if seen[i] {
+            continue;
+        }
+        let h = weir::features::stable_hash(&format!("{prefix}{i}"));
+        let seed = history.nodes(&[h]).unwrap().pop().flatten().unwrap();
+        let c = weir::graph::component(history, settings, seed, i64::MIN, i64::MAX, true).unwrap();
+        assert!(!c.truncated);
+        let mut g: Vec<usize> = c
+            .members
+            .iter()
+            .map(|m| m.claim_id[prefix.len()..].parse().unwrap())
+            .collect();
+        g.sort_unstable();
+        for &j in &g {
+            seen[j] = true;
+        }
+        groups.push(g);
+    }
+    groups.sort();
+    groups
+}
+
+/// Source: networkx.connected_components on networkx.karate_club_graph(), read as claims
+/// (friendships) naming two parties (members); members with more than `cap` friendships are
+/// hubs and link nothing (tests/reference/make_fixtures.py, section 9a).
+#[test]
+fn components_match_networkx_on_the_karate_club_with_hubs_cut() {
+    let f = fixture("components.json");
+    let k = &f["karate"];
+    let cap = k["cap"].as_u64().unwrap() as u32;
+    let edges = ids_of(&k["edges"]);
+    let mut history = weir::features::MemoryHistory::new();
+    for (i, e) in edges.iter().enumerate() {
+        history.record(&graph_claim(
+            &format!("KC-{i}"),
+            i as i64,
+            &[
+                ("witness", format!("M{}", e[0])),
+                ("witness", format!("M{}", e[1])),
+            ],
+        ));
+    }
+    let settings = graph_settings(cap);
+    let got = weir_groups(&history, &settings, edges.len(), "KC-");
+    assert_eq!(got, ids_of(&k["claim_groups"]));
+    // The hubs weir reports are networkx's members above the cap.
+    let mut hubs = std::collections::BTreeSet::new();
+    for i in 0..edges.len() {
+        use weir::graph::GraphSource;
+        let seed = history
+            .nodes(&[weir::features::stable_hash(&format!("KC-{i}"))])
+            .unwrap()
+            .pop()
+            .flatten()
+            .unwrap();
+        let c =
+            weir::graph::component(&history, &settings, seed, i64::MIN, i64::MAX, true).unwrap();
+        hubs.extend(c.hubs.iter().map(|h| h.key.clone()));
+    }
+    let want: std::collections::BTreeSet<String> = k["hubs"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|m| format!("witness:M{}", m.as_u64().unwrap()))
+        .collect();
+    assert_eq!(hubs, want);
+}
+
+/// Source: networkx.connected_components on networkx.gnm_random_graph(300, 240, seed=7):
+/// each node a claim, each edge a party both its claims name (make_fixtures.py, section 9b).
+#[test]
+fn components_match_networkx_on_a_random_graph() {
+    let f = fixture("components.json");
+    let r = &f["random"];
+    let n = r["nodes"].as_u64().unwrap() as usize;
+    let mut parties: Vec<Vec<(&str, String)>> = vec![Vec::new(); n];
+    for (i, e) in ids_of(&r["edges"]).iter().enumerate() {
+        parties[e[0]].push(("third_party", format!("E{i}")));
+        parties[e[1]].push(("third_party", format!("E{i}")));
+    }
+    let mut history = weir::features::MemoryHistory::new();
+    for (i, p) in parties.iter().enumerate() {
+        history.record(&graph_claim(&format!("RG-{i}"), i as i64, p));
+    }
+    let got = weir_groups(&history, &graph_settings(1000), n, "RG-");
+    assert_eq!(got, ids_of(&r["groups"]));
+}
+
+/// weir's GraphML is read by a general graph library: networkx.read_graphml, run by
+/// python3 (networkx installed by pip: tests/reference/requirements.txt, and `.ci/run`).
+/// Skipped, saying so, without python3 and networkx, unless GRAPHML_TEST_REQUIRED is set.
+#[test]
+fn graphml_is_read_by_networkx() {
+    let f = fixture("components.json");
+    let edges = ids_of(&f["karate"]["edges"]);
+    let mut history = weir::features::MemoryHistory::new();
+    for (i, e) in edges.iter().enumerate() {
+        history.record(&graph_claim(
+            &format!("KC-{i}"),
+            i as i64,
+            &[
+                ("witness", format!("M{}", e[0])),
+                ("witness", format!("M{}", e[1])),
+            ],
+        ));
+    }
+    use weir::graph::GraphSource;
+    let seed = history
+        .nodes(&[weir::features::stable_hash("KC-0")])
+        .unwrap()
+        .pop()
+        .flatten()
+        .unwrap();
+    let c = weir::graph::component(
+        &history,
+        &graph_settings(10),
+        seed,
+        i64::MIN,
+        i64::MAX,
+        true,
+    )
+    .unwrap();
+    let xml = weir::graph::graphml(&c, &|_| weir::graph::MemberFacts {
+        queue: "investigate".into(),
+        outcome: "".into(),
+    });
+    let path = std::env::temp_dir().join(format!("weir-graphml-{}.graphml", std::process::id()));
+    std::fs::write(&path, &xml).unwrap();
+    let script = "import sys, json, networkx as nx\n\
+        g = nx.read_graphml(sys.argv[1])\n\
+        claims = sorted(n for n, d in g.nodes(data=True) if d.get('kind') == 'claim')\n\
+        print(json.dumps({'nodes': g.number_of_nodes(), 'edges': g.number_of_edges(), \
+        'components': nx.number_connected_components(g), 'claims': claims, \
+        'amount': g.nodes['claim:KC-0']['amount'], 'queue': g.nodes['claim:KC-0']['queue']}))";
+    let out = std::process::Command::new("python3")
+        .arg("-c")
+        .arg(script)
+        .arg(&path)
+        .output();
+    let _ = std::fs::remove_file(&path);
+    let out = match out {
+        Ok(o) if o.status.success() => o,
+        other => {
+            let why = match other {
+                Ok(o) => String::from_utf8_lossy(&o.stderr).to_string(),
+                Err(e) => e.to_string(),
+            };
+            assert!(
+                std::env::var("GRAPHML_TEST_REQUIRED").is_err(),
+                "python3 with networkx is needed and GRAPHML_TEST_REQUIRED is set: {why}"
+            );
+            eprintln!("skipped: python3 with networkx not available ({why})");
+            return;
+        }
+    };
+    let got: Value = serde_json::from_slice(&out.stdout).unwrap();
+    let ties_edges: usize = c.ties.iter().map(|t| t.claims.len()).sum();
+    assert_eq!(got["nodes"], c.members.len() + c.ties.len());
+    assert_eq!(got["edges"], ties_edges);
+    assert_eq!(got["components"], 1, "a component reads back as one");
+    let mut want: Vec<String> = c
+        .members
+        .iter()
+        .map(|m| format!("claim:{}", m.claim_id))
+        .collect();
+    want.sort();
+    assert_eq!(got["claims"], serde_json::json!(want));
+    assert_eq!(got["amount"], 1000.0);
+    assert_eq!(got["queue"], "investigate");
 }

@@ -83,8 +83,13 @@ fn features_match_store_free_history(store: Store) {
     let claims = weir::demo_data::generate(400, 5);
     let mut reference = MemoryHistory::new();
     let mut expected_rows = BTreeSet::new();
+    let graph = svc.model().artifact.graph.clone();
     for d in &claims {
-        let want = features::compute_in_memory(&d.claim, &reference, &svc.model().artifact.graph);
+        let want = features::compute_in_memory(&d.claim, &reference, &graph);
+        // The claim's component as the decision records it, from the same history in memory.
+        let want_component = weir::graph::component_of_new(&reference, &graph, &d.claim)
+            .unwrap()
+            .reference(d.claim.event_time());
         reference.record(&d.claim);
         for (entity, e) in features::events_of(&d.claim) {
             expected_rows.insert((entity, e.at, e.claim));
@@ -96,7 +101,38 @@ fn features_match_store_free_history(store: Store) {
             .map(|f| rec.features[f.name])
             .collect();
         assert_eq!(got, want.to_vec(), "claim {}", d.claim.claim_id);
+        assert_eq!(
+            rec.component.as_ref(),
+            Some(&want_component),
+            "component of {}",
+            d.claim.claim_id
+        );
     }
+    // Rings read back: each is the component in memory of its members, as of the same instant.
+    let (as_of, rings) = svc.rings(now().timestamp(), 50).unwrap();
+    assert!(
+        !rings.is_empty(),
+        "400 demo claims hold components of 2+ claimants"
+    );
+    let from = as_of - graph.window_days * features::DAY;
+    for r in &rings {
+        let first = &r.members[0].claim_id;
+        let seed = weir::graph::GraphSource::nodes(&reference, &[features::stable_hash(first)])
+            .unwrap()
+            .pop()
+            .flatten()
+            .unwrap();
+        let want = weir::graph::component(&reference, &graph, seed, from, i64::MAX, true).unwrap();
+        let got: Vec<&str> = r.members.iter().map(|m| m.claim_id.as_str()).collect();
+        let expected: Vec<&str> = want.members.iter().map(|m| m.claim_id.as_str()).collect();
+        assert_eq!(got, expected, "ring {}", r.id);
+        assert_eq!(r.id, want.id);
+        assert!(r.facts.claimants >= 2);
+    }
+    assert!(
+        rings.windows(2).all(|w| w[0].score >= w[1].score),
+        "ranked by score"
+    );
     let rows: BTreeSet<_> = svc
         .store
         .history_dump()
@@ -436,6 +472,176 @@ fn link_reasons_name_the_linked_claims(store: Store) {
     }
 }
 
+/// Claims for the graph tests: each its own claimant and policy, no address, the parties
+/// given, reported a day apart.
+fn graph_claims(
+    prefix: &str,
+    n: usize,
+    start_hour: i64,
+    parties: &dyn Fn(usize) -> Vec<(weir::claim::Role, String)>,
+) -> Vec<weir::claim::Claim> {
+    let base = weir::demo_data::generate(1, 3).remove(0).claim;
+    (0..n)
+        .map(|i| {
+            let mut c = base.clone();
+            c.claim_id = format!("C-{prefix}-{i}");
+            c.claimant_id = format!("K-{prefix}-{i}");
+            c.policy_id = format!("P-{prefix}-{i}");
+            c.address_id = None;
+            c.reported_at = base.reported_at + chrono::Duration::hours(start_hour + i as i64);
+            c.parties = parties(i)
+                .into_iter()
+                .map(|(role, id)| weir::claim::Party { role, id })
+                .collect();
+            c
+        })
+        .collect()
+}
+
+/// A payee account naming more claims than its kind's cap (a leasing company's account, say)
+/// links nothing: two unrelated pairs that both use it stay apart, and the hub is reported.
+/// Below the cap, the same account does link them (the check can fail).
+fn a_hub_does_not_merge_unrelated_claims(store: Store) {
+    use weir::claim::Role::{PayeeAccount, Witness};
+    let svc = service_on(store);
+    let cap = svc.model().artifact.graph.cap("payee_account") as usize;
+    let hub = |prefix: &str, n: usize| {
+        let mut claims = graph_claims(prefix, n, 0, &|_| {
+            vec![(PayeeAccount, format!("B-{prefix}"))]
+        });
+        // Two pairs, each tied by a witness of its own, each with one claim paid into the account.
+        let pairs = graph_claims(&format!("{prefix}P"), 4, n as i64, &|i| {
+            let mut p = vec![(Witness, format!("W-{prefix}-{}", i / 2))];
+            if i % 2 == 0 {
+                p.push((PayeeAccount, format!("B-{prefix}")));
+            }
+            p
+        });
+        claims.extend(pairs);
+        claims
+    };
+    for c in hub("HUB", cap + 5) {
+        svc.decide(c, now()).unwrap();
+    }
+    let last = svc.store.head("C-HUBP-3").unwrap().unwrap();
+    let rec = svc
+        .store
+        .decision("C-HUBP-3", last.revision)
+        .unwrap()
+        .unwrap();
+    let c = rec.component.unwrap();
+    assert_eq!(c.claims, 2, "the pair alone: {c:?}");
+    let as_of = svc.rings_as_of(now().timestamp()).unwrap();
+    let comp = svc.component_of("C-HUBP-2", as_of).unwrap().unwrap();
+    let ids: Vec<&str> = comp.members.iter().map(|m| m.claim_id.as_str()).collect();
+    assert_eq!(ids, ["C-HUBP-2", "C-HUBP-3"]);
+    assert!(
+        comp.hubs
+            .iter()
+            .any(|h| h.key == "payee_account:B-HUB" && h.claims > cap),
+        "hub reported: {:?}",
+        comp.hubs
+    );
+    // Below the cap the account links everything that names it.
+    for c in hub("LOW", 3) {
+        svc.decide(c, now()).unwrap();
+    }
+    let comp = svc
+        .component_of(
+            "C-LOWP-2",
+            as_of.max(svc.rings_as_of(now().timestamp()).unwrap()),
+        )
+        .unwrap()
+        .unwrap();
+    assert_eq!(comp.members.len(), 3 + 4, "{:?}", comp.members);
+    assert!(comp.hubs.is_empty());
+}
+
+/// A confirmed fraud raises the open referred claims of its component, by the stated share per
+/// confirmed claim and no further than the stated bound, with a reason naming the party and an
+/// audit revision saying why; posting the same outcome again changes nothing.
+fn confirmed_fraud_raises_linked_open_claims(store: Store) {
+    use weir::claim::Role::PayeeAccount;
+    let svc = service_on(store);
+    let rt = runtime();
+    // sled's group-commit loop runs on the runtime that awaits durability.
+    rt.block_on(async { svc.store.start() });
+    let claims = graph_claims("RING", 7, 0, &|_| vec![(PayeeAccount, "B-RING".into())]);
+    let mut base = BTreeMap::new();
+    for c in claims {
+        let (rec, _) = svc.decide(c, now()).unwrap();
+        base.insert(rec.claim_id.clone(), rec);
+    }
+    // Claims 3 to 6 share the account with three or more others: referred by the shipped rule.
+    let open: Vec<String> = (3..7).map(|i| format!("C-RING-{i}")).collect();
+    for id in &open {
+        assert_eq!(base[id].queue, Queue::Investigate, "{id}");
+    }
+    let latest = |id: &str| {
+        let h = svc.store.head(id).unwrap().unwrap();
+        svc.store.decision(id, h.revision).unwrap().unwrap()
+    };
+    rt.block_on(svc.record_outcome("C-RING-0", report(Outcome::FraudConfirmed), now()))
+        .unwrap()
+        .unwrap();
+    for id in &open {
+        let rec = latest(id);
+        assert_eq!(rec.revision, 2, "{id}");
+        let want = base[id].priority * (1.0 + weir::rings::RING_RAISE_PER_CONFIRMED);
+        assert!(
+            (rec.priority - want).abs() < 1e-6 * want,
+            "{id}: {} vs {want}",
+            rec.priority
+        );
+        let reason = &rec.reasons[0];
+        assert_eq!(reason.code, "ring.confirmed");
+        assert!(
+            reason.text.contains("payee account B-RING")
+                && reason.text.contains("1 claim confirmed as fraud")
+                && reason.text.contains("C-RING-0"),
+            "{}",
+            reason.text
+        );
+        assert!(rec.revised_because.as_deref().unwrap().contains("C-RING-0"));
+        let item = svc
+            .store
+            .queue_item(Queue::Investigate, id)
+            .unwrap()
+            .unwrap();
+        assert_eq!(item.priority, rec.priority);
+    }
+    // The same post again: nothing new.
+    rt.block_on(svc.record_outcome("C-RING-0", report(Outcome::FraudConfirmed), now()))
+        .unwrap();
+    assert_eq!(latest(&open[0]).revision, 2);
+    // Two more confirmed: 1 + 3 x 0.5 = 2.5, held at the bound.
+    for id in ["C-RING-1", "C-RING-2"] {
+        rt.block_on(svc.record_outcome(id, report(Outcome::FraudConfirmed), now()))
+            .unwrap();
+    }
+    for id in &open {
+        let rec = latest(id);
+        let want = base[id].priority * weir::rings::RING_RAISE_MAX;
+        assert!(
+            (rec.priority - want).abs() < 1e-6 * want,
+            "{id}: {} vs {want}",
+            rec.priority
+        );
+        assert!(
+            rec.reasons[0].text.contains("3 claims confirmed as fraud"),
+            "{}",
+            rec.reasons[0].text
+        );
+        assert_eq!(
+            rec.reasons
+                .iter()
+                .filter(|r| r.code == "ring.confirmed")
+                .count(),
+            1
+        );
+    }
+}
+
 macro_rules! suite {
     ($($name:ident),* $(,)?) => {
         mod sled_backend {
@@ -466,6 +672,8 @@ suite!(
     locks_serialise_shared_keys,
     linked_claims_by_party,
     link_reasons_name_the_linked_claims,
+    a_hub_does_not_merge_unrelated_claims,
+    confirmed_fraud_raises_linked_open_claims,
 );
 
 /// The sled store's in-memory entity histories answer exactly as its index does, through

@@ -13,6 +13,7 @@ Writes tests/reference/fixtures/*.json. Versions used are recorded in each file.
 import json
 import pathlib
 
+import networkx as nx
 import numpy as np
 import scipy
 import scipy.stats
@@ -36,6 +37,7 @@ from sklearn.preprocessing import StandardScaler
 
 OUT = pathlib.Path(__file__).parent / "fixtures"
 VERSIONS = {
+    "networkx": nx.__version__,
     "numpy": np.__version__,
     "scipy": scipy.__version__,
     "scikit-learn": sklearn.__version__,
@@ -215,6 +217,39 @@ def main():
         "source": ("sklearn.isotonic.IsotonicRegression(out_of_bounds='clip') on standardised mean "
                    "radius of load_breast_cancer(), positive = malignant; ECE by direct NumPy "
                    "computation over 10 equal-width bins"),
+    })
+
+    # 9. Connected components (networkx.connected_components).
+    # (a) Zachary's karate club (networkx.karate_club_graph()), read as weir reads parties:
+    # each member is a party, each friendship a claim naming its two members. A member with
+    # more friendships than the cap is a hub and links nothing; networkx's components of the
+    # bipartite claim-party graph without the hubs give the expected groups of claims.
+    karate = nx.karate_club_graph()
+    cap = 10
+    edges = sorted((min(u, v), max(u, v)) for u, v in karate.edges())
+    hubs = sorted(n for n in karate.nodes() if karate.degree(n) > cap)
+    b = nx.Graph()
+    for i, (u, v) in enumerate(edges):
+        b.add_node(("claim", i))
+        for m in (u, v):
+            if m not in hubs:
+                b.add_edge(("claim", i), ("member", m))
+    karate_groups = sorted(
+        sorted(n[1] for n in comp if n[0] == "claim") for comp in nx.connected_components(b)
+    )
+    # (b) A random graph (networkx.gnm_random_graph(300, 240, seed=7)): each node a claim,
+    # each edge a party named by its two claims; components of claims.
+    g = nx.gnm_random_graph(300, 240, seed=7)
+    random_edges = sorted((min(u, v), max(u, v)) for u, v in g.edges())
+    random_groups = sorted(sorted(c) for c in nx.connected_components(g))
+    dump("components.json", {
+        "karate": {"edges": [list(e) for e in edges], "cap": cap, "hubs": hubs,
+                   "claim_groups": karate_groups},
+        "random": {"nodes": 300, "edges": [list(e) for e in random_edges],
+                   "groups": random_groups},
+        "source": ("networkx.connected_components on networkx.karate_club_graph() read as "
+                   "claims (edges) and parties (members) without members of degree > cap, "
+                   "and on networkx.gnm_random_graph(300, 240, seed=7)"),
     })
 
 

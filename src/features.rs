@@ -482,6 +482,30 @@ pub fn family(index: usize) -> usize {
         .map_or(index, |fam| fam[0] as usize)
 }
 
+/// What a referral says when no single feature qualifies as a reason: the score rests on many
+/// small signs together (or on the amount and volumes, which are never a reason on their own).
+pub fn pattern_reason() -> crate::model::Reason {
+    crate::model::Reason {
+        code: "model.pattern".into(),
+        text: "no single sign stands out: the model refers it on the pattern of the claim as a whole (amount, history and parties together); check it like any referral, without presuming anything".into(),
+        weight: 0.0,
+    }
+}
+
+/// The evidence a never-a-reason feature is said through when it raises a score: the amount
+/// of linked claims is exposure, and what an investigator can check is the links behind it.
+fn stand_in(index: usize, full: &FeatureVector) -> Option<usize> {
+    if index != F::LinkedAmount as usize {
+        return None;
+    }
+    // The component first; then the parties named together (a pair the graph does not
+    // follow because one of them is a hub still counts in the exposure).
+    [F::RingClaims, F::PairClaimants, F::LinkedLong]
+        .into_iter()
+        .map(|f| f as usize)
+        .find(|&f| full[f] > 0.0)
+}
+
 /// The smallest round figure (1, 2, 2.5 or 5 times a power of ten, 1,000 or more) above `a`.
 fn round_figure_above(a: f64) -> Option<f64> {
     if !(a.is_finite() && a > 0.0) {
@@ -504,24 +528,38 @@ fn round_figure_above(a: f64) -> Option<f64> {
 /// population; a flag qualifies when fewer than about three claims in ten carry it).
 pub const UNUSUAL_Z: f64 = 1.5;
 
+/// A value is also unusual when fewer than this share of training claims lie beyond it on
+/// its warning side (common practice, no source: one claim in twenty). Counts are heavy
+/// tailed: a few large rings stretch the standard deviation until "2 other claims in 30
+/// days", which 97% of claims never see, is under [`UNUSUAL_Z`] deviations from the mean.
+pub const RARE_SHARE: f64 = 0.05;
+
 /// The model's reasons for a score: features whose contribution raises the log-odds
 /// noticeably (by 0.2, a factor of about 1.2 in the odds), whose value lies on their warning
 /// side and is unusual ([`UNUSUAL_Z`] standard deviations of the training data beyond its
-/// mean), strongest first. `index` maps model features to the catalogue; `z` are the
-/// standardised model features and `contrib` their contributions.
+/// mean, or beyond the value all but [`RARE_SHARE`] of training claims stay within: `rare`
+/// holds those low and high values per model feature), strongest first. `index` maps model
+/// features to the catalogue; `z` are the standardised model features and `contrib` their
+/// contributions.
 pub fn reasons(
     full: &FeatureVector,
     index: &[usize],
     z: &[f64],
+    rare: &[(f64, f64)],
     contrib: &[f64],
     max: usize,
 ) -> Vec<crate::model::Reason> {
+    let value = |i: usize| full[index[i]];
+    let bounds = |i: usize| rare.get(i).copied().unwrap_or((f64::NAN, f64::NAN));
+    // What each model feature is said as: itself, or the evidence behind a feature that is
+    // never a reason on its own (the linked claims' amount is said as the links themselves).
+    let said = |i: usize| stand_in(index[i], full).unwrap_or(index[i]);
     let mut order: Vec<usize> = (0..contrib.len())
         .filter(|&i| contrib[i] > 0.2)
         .filter(|&i| match warning_side(index[i]) {
-            Warning::High => z[i] >= UNUSUAL_Z,
-            Warning::Low => z[i] <= -UNUSUAL_Z,
-            Warning::Never => false,
+            Warning::High => z[i] >= UNUSUAL_Z || value(i) > bounds(i).1,
+            Warning::Low => z[i] <= -UNUSUAL_Z || value(i) < bounds(i).0,
+            Warning::Never => said(i) != index[i],
         })
         .collect();
     order.sort_by(|&a, &b| contrib[b].total_cmp(&contrib[a]));
@@ -529,7 +567,7 @@ pub fn reasons(
     // one thing.
     let mut families = Vec::new();
     order.retain(|&i| {
-        let f = family(index[i]);
+        let f = family(said(i));
         let new = !families.contains(&f);
         families.push(f);
         new
@@ -538,10 +576,11 @@ pub fn reasons(
         .into_iter()
         .take(max)
         .map(|i| {
-            let def = &CATALOGUE[index[i]];
+            let s = said(i);
+            let def = &CATALOGUE[s];
             crate::model::Reason {
                 code: format!("feature.{}", def.name),
-                text: (def.reason)(full[index[i]], full),
+                text: (def.reason)(full[s], full),
                 weight: contrib[i],
             }
         })

@@ -39,6 +39,7 @@ pub mod client;
 pub mod config;
 pub mod demo;
 pub mod demo_data;
+pub mod drawing;
 pub mod elsewhere;
 pub mod features;
 pub mod feedback;

@@ -989,6 +989,9 @@ pub struct Model {
     pub artifact: ModelArtifact,
     index: Vec<usize>,
     classifier: Classifier,
+    /// Per model feature, the training values below which and above which one claim in
+    /// twenty lies (from the stored baselines; NaN without them).
+    rare: Vec<(f64, f64)>,
 }
 
 impl std::fmt::Debug for Model {
@@ -1060,10 +1063,26 @@ impl Model {
             return Err(ArtifactError::Shape(p));
         }
         let classifier = Classifier::from_spec(&artifact.classifier, d, 0)?;
+        let rare = (0..d)
+            .map(|j| {
+                let sketch = artifact
+                    .baselines
+                    .features
+                    .get(j)
+                    .map_or(&[][..], |b| &b.sketch[..]);
+                if sketch.len() < 20 {
+                    return (f64::NAN, f64::NAN);
+                }
+                let at =
+                    |q: f64| sketch[((q * sketch.len() as f64) as usize).min(sketch.len() - 1)];
+                (at(features::RARE_SHARE), at(1.0 - features::RARE_SHARE))
+            })
+            .collect();
         Ok(Model {
             artifact,
             index,
             classifier,
+            rare,
         })
     }
 
@@ -1118,7 +1137,7 @@ impl Model {
     }
 
     fn reasons(&self, full: &FeatureVector, z: &[f64], contrib: &[f64]) -> Vec<Reason> {
-        features::reasons(full, &self.index, z, contrib, MAX_REASONS)
+        features::reasons(full, &self.index, z, &self.rare, contrib, MAX_REASONS)
     }
 }
 

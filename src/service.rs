@@ -384,6 +384,12 @@ impl Service {
                     weight: 0.0,
                 });
             }
+            // A referral always says why, even when the why is that no one sign stands out.
+            if matches!(routed.queue, Queue::Investigate | Queue::DeskCheck)
+                && reasons.iter().all(|r| r.code.starts_with("context."))
+            {
+                reasons.insert(0, features::pattern_reason());
+            }
         }
         if routed.queue != Queue::NoReview {
             self.name_linked_claims(&claim, &rules, &mut reasons)?;

@@ -86,6 +86,9 @@ pub(crate) fn routes() -> axum::Router<AppState> {
         .route("/ui/claims/{claim_id}", get(claim_page))
         .route("/ui/claims/{claim_id}/outcome", post(post_outcome))
         .route("/ui/monitoring", get(monitoring_page))
+        .route("/ui/rings", get(rings_page))
+        .route("/ui/rings/{ring_id}", get(ring_page))
+        .route("/ui/rings/{ring_id}/graphml", get(ring_graphml))
 }
 
 const STYLE: &str = "
@@ -125,6 +128,15 @@ dl{display:grid;grid-template-columns:minmax(0,13rem) minmax(0,1fr);gap:.25rem 1
 dt{font-weight:600}
 dd{margin:0;overflow-wrap:anywhere}
 td.id,td.num{white-space:nowrap}
+figure.net,figure.tl{padding:.3rem;margin:.5rem 0}
+figcaption{font-size:.9rem;margin:.3rem .4rem}
+.key{display:flex;gap:1.2rem;flex-wrap:wrap;font-size:.9rem;margin:.3rem .4rem}
+.key span{display:inline-flex;align-items:center;gap:.35rem}
+.key i{display:inline-block;width:1.6rem;height:.95rem;border:1.5px solid #55524b;background:#fff}
+.key i.party{border-radius:50%;background:#e6eef0;border-color:#24403f}
+.key i.inv{background:#fbe3cf;border-color:#8a3b12;border-width:2px}
+.key i.fraud{background:#f4d6cf;border-color:#8a1c12;border-width:3px}
+.score{font-variant-numeric:tabular-nums;font-weight:700}
 ";
 
 pub const CAUTION: &str = "A referral is a prompt for human review, not a finding of fraud. Payment decisions follow the insurer's own procedures, fair claims handling rules and the law where it operates; use personal data and protected characteristics only as that law allows.";
@@ -140,6 +152,9 @@ fn page(title: &str, who: Option<(&Principal, &str)>, body: &str) -> Response {
         out.push_str("<nav aria-label=\"main\">");
         if p.has_any(&[Role::Investigator]) {
             out.push_str("<a href=\"/ui/queues\">Queues</a>");
+        }
+        if p.has_any(&[Role::Investigator, Role::Analyst]) {
+            out.push_str("<a href=\"/ui/rings\">Rings</a>");
         }
         if p.has_any(&[Role::Analyst]) {
             out.push_str("<a href=\"/ui/monitoring\">Monitoring</a>");
@@ -542,28 +557,8 @@ fn render_claim(
             .collect::<Vec<_>>()
             .join(", "),
     );
-    // Linked claims.
-    let linked = st
-        .svc
-        .store
-        .linked_claims(c, 365 * 86_400)
-        .unwrap_or_default();
-    b.push_str("<h2>Claims sharing a party, the policy or the address (within a year)</h2>");
-    if linked.is_empty() {
-        b.push_str("<p>None.</p>");
-    } else {
-        b.push_str("<table><thead><tr><th scope=\"col\">Shared</th><th scope=\"col\">Claim</th></tr></thead><tbody>");
-        for (via, other) in linked.iter().take(100) {
-            let _ = write!(
-                b,
-                "<tr><td>{}</td><td><a href=\"/ui/claims/{}\">{}</a></td></tr>",
-                esc(&via.replace('_', " ")),
-                url_segment(other),
-                esc(other)
-            );
-        }
-        b.push_str("</tbody></table>");
-    }
+    // The claim's component of the claims graph, drawn, on a time line, and party by party.
+    b.push_str(&component_section(st, c));
     // Revisions.
     b.push_str("<h2>Revisions</h2><table><thead><tr><th scope=\"col\">Revision</th><th scope=\"col\">Decided</th><th scope=\"col\">Queue</th><th scope=\"col\" class=\"num\">Probability</th><th scope=\"col\">Filed by</th></tr></thead><tbody>");
     for r in &revs {
@@ -860,6 +855,454 @@ async fn monitoring_page(State(st): State<AppState>, headers: HeaderMap) -> Resp
         f(compare.agreement, true)
     );
     page("Monitoring", Some((&p, &csrf)), &b)
+}
+
+/// Short words for an outcome, as drawings print them.
+fn outcome_short(o: Outcome) -> &'static str {
+    match o {
+        Outcome::FraudConfirmed => "confirmed fraud",
+        Outcome::Inflated => "inflated",
+        Outcome::Genuine => "genuine",
+        Outcome::NotProven => "not proven",
+        Outcome::Withdrawn => "withdrawn",
+    }
+}
+
+fn member_facts(m: &crate::rings::Member) -> crate::drawing::ClaimFacts {
+    crate::drawing::ClaimFacts {
+        amount: money(&m.currency, m.amount),
+        date: m.reported_at.get(..10).unwrap_or("").to_string(),
+        queue: m
+            .queue
+            .map_or("—".to_string(), |q| queue_title(q).to_lowercase()),
+        outcome: m.outcome.map(outcome_short).unwrap_or("").to_string(),
+    }
+}
+
+/// The drawing, the time line and the member table of a ring, with `focus` the claim the page
+/// is about.
+fn ring_body(
+    ring: &crate::rings::Ring,
+    c: &crate::graph::Component,
+    focus: u64,
+    mark_focus: bool,
+) -> String {
+    let by_id: HashMap<&str, &crate::rings::Member> = ring
+        .members
+        .iter()
+        .map(|m| (m.claim_id.as_str(), m))
+        .collect();
+    let facts = |n: &crate::graph::ClaimNode| match by_id.get(n.claim_id.as_str()) {
+        Some(m) => member_facts(m),
+        None => crate::drawing::ClaimFacts {
+            amount: crate::features::fmt_amount(n.amount),
+            date: String::new(),
+            queue: String::new(),
+            outcome: String::new(),
+        },
+    };
+    let link = |id: &str| format!("/ui/claims/{}", url_segment(id));
+    let mut b = String::new();
+    let _ = write!(
+        b,
+        "<figure class=\"net\">{}<figcaption><div class=\"key\"><span><i></i> claim (its id, report date, amount, queue or outcome)</span><span><i class=\"party\"></i> party tying two or more claims</span><span><i class=\"inv\"></i> claim in the investigate queue</span><span><i class=\"fraud\"></i> claim confirmed as fraud</span>{}</div></figcaption></figure>",
+        crate::drawing::network_svg(c, focus, mark_focus, &facts, &link),
+        if mark_focus {
+            "<span>double frame: the claim this page is about</span>"
+        } else {
+            ""
+        }
+    );
+    let _ = write!(
+        b,
+        "<h3>Time line</h3><figure class=\"tl\">{}</figure>",
+        crate::drawing::timeline_svg(c, if mark_focus { focus } else { 0 }, &facts)
+    );
+    // Who ties whom: one row per party, with its claims.
+    b.push_str("<h3>Parties that tie these claims</h3><table><thead><tr><th scope=\"col\">Party</th><th scope=\"col\" class=\"num\">Claims</th><th scope=\"col\">Its claims in this group</th></tr></thead><tbody>");
+    for t in &ring.ties {
+        let list: Vec<String> = t
+            .claims
+            .iter()
+            .map(|id| format!("<a href=\"{}\">{}</a>", link(id), esc(id)))
+            .collect();
+        let _ = write!(
+            b,
+            "<tr><td>{} <strong>{}</strong></td><td class=\"num\">{}</td><td>{}</td></tr>",
+            esc(&t.kind.replace('_', " ")),
+            esc(&t.id),
+            t.claims.len(),
+            list.join(", ")
+        );
+    }
+    b.push_str("</tbody></table>");
+    b.push_str("<h3>Claims, in report order</h3><table><thead><tr><th scope=\"col\">Claim</th><th scope=\"col\">Reported</th><th scope=\"col\">Loss</th><th scope=\"col\">Claimant</th><th scope=\"col\" class=\"num\">Amount</th><th scope=\"col\">Queue</th><th scope=\"col\">Outcome</th></tr></thead><tbody>");
+    for m in &ring.members {
+        let _ = write!(
+            b,
+            "<tr><td class=\"id\"><a href=\"{}\">{}</a></td><td>{}</td><td>{}</td><td>{}</td><td class=\"num\">{}</td><td>{}</td><td>{}</td></tr>",
+            link(&m.claim_id),
+            esc(&m.claim_id),
+            when(&m.reported_at),
+            esc(&m.loss_date),
+            esc(&m.claimant_id),
+            money(&m.currency, m.amount),
+            m.queue.map_or("—", queue_title),
+            m.outcome.map_or("open", outcome_words)
+        );
+    }
+    b.push_str("</tbody></table>");
+    if !ring.hubs.is_empty() {
+        b.push_str("<h3>Busy parties not followed</h3><p>These name more claims in the window than their kind's cap, so they link nothing (a busy body shop is not suspicious for being busy):</p><ul>");
+        for h in &ring.hubs {
+            let _ = write!(
+                b,
+                "<li>{}: {} claims or more (cap {})</li>",
+                esc(&crate::graph::party_words(&h.party)),
+                h.claims,
+                h.cap
+            );
+        }
+        b.push_str("</ul>");
+    }
+    b
+}
+
+/// The claim page's section on its component.
+fn component_section(st: &AppState, claim: &crate::claim::Claim) -> String {
+    let svc = &st.svc;
+    let now = chrono::Utc::now().timestamp();
+    let read = || -> Result<Option<(crate::rings::Ring, crate::graph::Component)>, crate::service::ServiceError> {
+        let as_of = svc.rings_as_of(now)?;
+        match svc.component_of(&claim.claim_id, as_of)? {
+            Some(c) => Ok(Some((svc.ring_view(&c, as_of)?, c))),
+            None => Ok(None),
+        }
+    };
+    let mut b = String::from("<h2 id=\"linked\">Linked claims</h2>");
+    match read() {
+        Err(e) => {
+            tracing::error!(error = %e, "claim page: component read failed");
+            b.push_str("<p class=\"errors\">The linked claims could not be read; this has been logged.</p>");
+        }
+        Ok(None) => b.push_str("<p>None.</p>"),
+        Ok(Some((ring, c))) if c.members.len() < 2 => {
+            let _ = write!(
+                b,
+                "<p>No other claim in the year to {} shares a person, account, household or address with this one, or two of its firms.</p>",
+                when(&ring.as_of)
+            );
+            if !ring.hubs.is_empty() {
+                let names: Vec<String> = ring
+                    .hubs
+                    .iter()
+                    .map(|h| esc(&crate::graph::party_words(&h.party)))
+                    .collect();
+                let _ = write!(
+                    b,
+                    "<p>Busy parties not followed (above their kind's cap): {}.</p>",
+                    names.join(", ")
+                );
+            }
+        }
+        Ok(Some((ring, c))) => {
+            let focus = crate::features::stable_hash(&claim.claim_id);
+            let _ = write!(
+                b,
+                "<p>This claim belongs to group <a href=\"/ui/rings/{}\">{}</a>: <strong>{}</strong> claims by <strong>{}</strong> claimants within the year to {}, {} reported in its last 30 days, {} referred or confirmed as fraud, {} in all{}. Ring score <span class=\"score\">{:.1}</span>.</p>",
+                url_segment(&ring.id),
+                esc(&ring.id),
+                ring.facts.claims,
+                ring.facts.claimants,
+                when(&ring.as_of),
+                ring.facts.recent,
+                ring.facts.flagged,
+                crate::features::fmt_amount(ring.facts.amount),
+                if ring.truncated {
+                    " (followed to the bound; there are more)"
+                } else {
+                    ""
+                },
+                ring.score
+            );
+            b.push_str(&ring_body(&ring, &c, focus, true));
+        }
+    }
+    b.push_str(&shared_alone(st, claim));
+    b
+}
+
+/// Parties this claim shares with other claims that tie nothing on their own (a firm other
+/// claims name without a second firm in common, a hub): one row per party, its claims counted
+/// and the first few named.
+fn shared_alone(st: &AppState, claim: &crate::claim::Claim) -> String {
+    let Ok(linked) = st.svc.store.linked_claims(claim, 365 * 86_400) else {
+        return String::new();
+    };
+    let mut by_party: std::collections::BTreeMap<&str, Vec<&str>> = Default::default();
+    for (via, other) in &linked {
+        by_party
+            .entry(via.as_str())
+            .or_default()
+            .push(other.as_str());
+    }
+    let as_of = st
+        .svc
+        .rings_as_of(chrono::Utc::now().timestamp())
+        .unwrap_or(i64::MAX);
+    let tied: std::collections::HashSet<String> = st
+        .svc
+        .component_of(&claim.claim_id, as_of)
+        .ok()
+        .flatten()
+        .map(|c| c.ties.into_iter().map(|t| t.key).collect())
+        .unwrap_or_default();
+    let rows: Vec<_> = by_party
+        .iter()
+        .filter(|(k, _)| !tied.contains(**k))
+        .collect();
+    if rows.is_empty() {
+        return String::new();
+    }
+    let mut b = String::from(
+        "<h3>Also shared, tying nothing on its own</h3><p>Other claims within a year before or after this one that name one of its parties, where that alone is not a tie (one firm in common, or a party above its kind's cap).</p><table><thead><tr><th scope=\"col\">Party</th><th scope=\"col\" class=\"num\">Other claims</th><th scope=\"col\">First of them</th></tr></thead><tbody>",
+    );
+    for (party, claims) in rows {
+        let list: Vec<String> = claims
+            .iter()
+            .take(8)
+            .map(|id| format!("<a href=\"/ui/claims/{}\">{}</a>", url_segment(id), esc(id)))
+            .collect();
+        let _ = write!(
+            b,
+            "<tr><td>{}</td><td class=\"num\">{}</td><td>{}{}</td></tr>",
+            esc(&crate::graph::party_words(party)),
+            claims.len(),
+            list.join(", "),
+            if claims.len() > 8 { ", …" } else { "" }
+        );
+    }
+    b.push_str("</tbody></table>");
+    b
+}
+
+async fn rings_page(State(st): State<AppState>, headers: HeaderMap) -> Response {
+    let (p, csrf) = match require(&st, &headers, &[Role::Investigator, Role::Analyst]) {
+        Ok(x) => x,
+        Err(r) => return r,
+    };
+    let (as_of, rings) = match st.svc.rings(chrono::Utc::now().timestamp(), 50) {
+        Ok(x) => x,
+        Err(e) => return failed((&p, &csrf), "rings page", &e),
+    };
+    let g = st.svc.model().artifact.graph.clone();
+    let as_of = chrono::DateTime::from_timestamp(as_of, 0)
+        .map(|d| d.format("%Y-%m-%d %H:%M UTC").to_string())
+        .unwrap_or_default();
+    let mut b = format!(
+        "<h1>Rings</h1><p>Groups of claims tied together by shared people, accounts, addresses and firms within the {} days to {as_of} (the latest claim reported), with two or more claimants, best score first. A group is a lead for an investigator to look at, not a finding.</p>",
+        g.window_days
+    );
+    if rings.is_empty() {
+        b.push_str("<p>No group of two or more claimants yet.</p>");
+    } else {
+        b.push_str("<table><thead><tr><th scope=\"col\" class=\"num\">Rank</th><th scope=\"col\">Group</th><th scope=\"col\" class=\"num\">Score</th><th scope=\"col\" class=\"num\">Claims</th><th scope=\"col\" class=\"num\">Claimants</th><th scope=\"col\" class=\"num\">Last 30 days</th><th scope=\"col\" class=\"num\">Referred or confirmed</th><th scope=\"col\" class=\"num\">Amount</th><th scope=\"col\">Reported</th><th scope=\"col\">Tied by</th></tr></thead><tbody>");
+        for (i, r) in rings.iter().enumerate() {
+            let ties: Vec<String> = r
+                .ties
+                .iter()
+                .take(4)
+                .map(|t| {
+                    format!(
+                        "{} {} ({})",
+                        esc(&t.kind.replace('_', " ")),
+                        esc(&t.id),
+                        t.claims.len()
+                    )
+                })
+                .collect();
+            let currency = r.members.first().map_or("", |m| m.currency.as_str());
+            let _ = write!(
+                b,
+                "<tr><td class=\"num\">{}</td><td class=\"id\"><a href=\"/ui/rings/{}\">{}</a></td><td class=\"num score\">{:.1}</td><td class=\"num\">{}</td><td class=\"num\">{}</td><td class=\"num\">{}</td><td class=\"num\">{}</td><td class=\"num\">{}</td><td>{} to {}</td><td>{}{}</td></tr>",
+                i + 1,
+                url_segment(&r.id),
+                esc(&r.id),
+                r.score,
+                r.facts.claims,
+                r.facts.claimants,
+                r.facts.recent,
+                r.facts.flagged,
+                money(currency, r.facts.amount),
+                esc(r.first_reported.get(..10).unwrap_or("")),
+                esc(r.last_reported.get(..10).unwrap_or("")),
+                ties.join(", "),
+                if r.ties.len() > 4 { ", …" } else { "" }
+            );
+        }
+        b.push_str("</tbody></table>");
+    }
+    let caps: Vec<String> = g
+        .caps
+        .iter()
+        .map(|(k, v)| format!("{} {v}", esc(&k.replace('_', " "))))
+        .collect();
+    let _ = write!(
+        b,
+        "<h2>How groups are found and ranked</h2><div class=\"card\"><p>Two claims are tied when they share a claimant, policy, address, payee account, witness or third party, or when they name the same two firms (repairer, medical provider, attorney): one busy firm in common says nothing. Ties are followed from claim to claim, up to {} claims.</p><p>A party naming more claims in the window than {} times the usual number for its kind (at least {}) ties nothing. Caps, measured when the model was trained: {}.</p><p>Score = (claimants − 1) × (1 + share reported in the last 30 days) × (1 + share referred or confirmed as fraud) × (1 + log<sub>10</sub>(1 + total amount / 10,000)). One person's own claims score 0.</p></div>",
+        g.max_claims,
+        g.hub_factor,
+        g.hub_floor,
+        if caps.is_empty() {
+            "none measured (every kind at the floor)".to_string()
+        } else {
+            caps.join(", ")
+        }
+    );
+    page("Rings", Some((&p, &csrf)), &b)
+}
+
+async fn ring_page(
+    State(st): State<AppState>,
+    headers: HeaderMap,
+    Path(id): Path<String>,
+) -> Response {
+    let (p, csrf) = match require(&st, &headers, &[Role::Investigator, Role::Analyst]) {
+        Ok(x) => x,
+        Err(r) => return r,
+    };
+    let who = Some((&p, csrf.as_str()));
+    let not_found = || {
+        status_page(
+            StatusCode::NOT_FOUND,
+            "No such group",
+            who,
+            "<h1>No such group</h1><p><a href=\"/ui/rings\">Back to the rings</a>.</p>",
+        )
+    };
+    if check_id("ring_id", &id).is_err() {
+        return not_found();
+    }
+    let svc = &st.svc;
+    let read = || -> Result<Option<(crate::rings::Ring, crate::graph::Component)>, crate::service::ServiceError> {
+        let Some(r) = svc.store.ring(&id)? else {
+            return Ok(None);
+        };
+        let as_of = svc.rings_as_of(chrono::Utc::now().timestamp())?;
+        match svc.component_of(&r.seed, as_of)? {
+            Some(c) => Ok(Some((svc.ring_view(&c, as_of)?, c))),
+            None => Ok(None),
+        }
+    };
+    let (ring, c) = match read() {
+        Ok(Some(x)) => x,
+        Ok(None) => return not_found(),
+        Err(e) => return failed((&p, &csrf), "ring page", &e),
+    };
+    // The drawing centres on the claim tied most.
+    let focus = c
+        .members
+        .iter()
+        .max_by_key(|m| (c.ties_of(m.claim).len(), std::cmp::Reverse(m.at)))
+        .map_or(0, |m| m.claim);
+    let mut b = format!(
+        "<h1>Group {}</h1><p><strong>{}</strong> claims by <strong>{}</strong> claimants, reported {} to {}; {} in the last 30 days to {}; {} referred or confirmed as fraud; {} in all{}. Ring score <span class=\"score\">{:.1}</span>. <a href=\"/ui/rings/{}/graphml\">Download as GraphML</a> for a graph tool.</p>",
+        esc(&ring.id),
+        ring.facts.claims,
+        ring.facts.claimants,
+        esc(ring.first_reported.get(..10).unwrap_or("")),
+        esc(ring.last_reported.get(..10).unwrap_or("")),
+        ring.facts.recent,
+        when(&ring.as_of),
+        ring.facts.flagged,
+        money(
+            ring.members.first().map_or("", |m| m.currency.as_str()),
+            ring.facts.amount
+        ),
+        if ring.truncated {
+            " (followed to the bound; there are more)"
+        } else {
+            ""
+        },
+        ring.score,
+        url_segment(&ring.id)
+    );
+    if ring.id != id {
+        let _ = write!(
+            b,
+            "<p class=\"notice\">Group {} has since joined this group (its earliest claim is now {}).</p>",
+            esc(&id),
+            esc(ring.members.first().map_or("", |m| m.claim_id.as_str()))
+        );
+    }
+    b.push_str(&ring_body(&ring, &c, focus, false));
+    page(&format!("Group {}", ring.id), who, &b)
+}
+
+async fn ring_graphml(
+    State(st): State<AppState>,
+    headers: HeaderMap,
+    Path(id): Path<String>,
+) -> Response {
+    let (p, csrf) = match require(&st, &headers, &[Role::Investigator, Role::Analyst]) {
+        Ok(x) => x,
+        Err(r) => return r,
+    };
+    let svc = &st.svc;
+    let read = || -> Result<Option<String>, crate::service::ServiceError> {
+        if check_id("ring_id", &id).is_err() {
+            return Ok(None);
+        }
+        let Some(r) = svc.store.ring(&id)? else {
+            return Ok(None);
+        };
+        let as_of = svc.rings_as_of(chrono::Utc::now().timestamp())?;
+        let Some(c) = svc.component_of(&r.seed, as_of)? else {
+            return Ok(None);
+        };
+        let ring = svc.ring_view(&c, as_of)?;
+        let by_id: HashMap<&str, &crate::rings::Member> = ring
+            .members
+            .iter()
+            .map(|m| (m.claim_id.as_str(), m))
+            .collect();
+        Ok(Some(crate::graph::graphml(&c, &|n| {
+            let m = by_id.get(n.claim_id.as_str());
+            crate::graph::MemberFacts {
+                queue: m
+                    .and_then(|m| m.queue)
+                    .map(|q| q.as_str().to_string())
+                    .unwrap_or_default(),
+                outcome: m
+                    .and_then(|m| m.outcome)
+                    .map(|o| o.as_str().to_string())
+                    .unwrap_or_default(),
+            }
+        })))
+    };
+    match read() {
+        Ok(Some(xml)) => {
+            let mut r = xml.into_response();
+            r.headers_mut().insert(
+                header::CONTENT_TYPE,
+                HeaderValue::from_static("application/graphml+xml"),
+            );
+            if let Ok(v) = HeaderValue::from_str(&format!(
+                "attachment; filename=\"{}.graphml\"",
+                url_segment(&id)
+            )) {
+                r.headers_mut().insert(header::CONTENT_DISPOSITION, v);
+            }
+            r
+        }
+        Ok(None) => status_page(
+            StatusCode::NOT_FOUND,
+            "No such group",
+            Some((&p, &csrf)),
+            "<h1>No such group</h1>",
+        ),
+        Err(e) => failed((&p, &csrf), "GraphML download", &e),
+    }
 }
 
 #[cfg(test)]

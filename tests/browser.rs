@@ -348,7 +348,7 @@ fn investigator_and_analyst_work_through_the_pages_in_chromium() {
         let claim = d.wait_text("This claim is now leased to you.").await;
         let claim_url = d.url().await;
         assert!(claim_url.contains("/ui/claims/") && claim_url.ends_with("?taken=1"), "{claim_url}");
-        assert!(claim.contains("Why it was referred") && claim.contains("Claims sharing a party"));
+        assert!(claim.contains("Why it was referred") && claim.contains("Linked claims"));
         assert!(claim.contains("A referral is a prompt for human review"));
         d.assert_accessible_basics("claim").await;
         d.screenshot(&shots.join("claim.png")).await;
@@ -371,6 +371,29 @@ fn investigator_and_analyst_work_through_the_pages_in_chromium() {
         let done = d.wait_text("Outcome recorded.").await;
         assert!(done.contains("Fraud confirmed"), "recorded");
         assert!(done.contains("<td>inv-ada</td>"), "recorded by the key's name");
+        // Rings: the ranked list, a ring, and a ring claim's network drawing (both saved to
+        // docs/ for the README).
+        let docs = PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("docs");
+        d.goto(&format!("{base}/ui/rings")).await;
+        let rings = d.wait_text("How groups are found and ranked").await;
+        assert!(rings.contains("A referral is a prompt for human review"));
+        assert!(rings.contains("<td class=\"num score\">"), "at least one ring listed");
+        d.assert_accessible_basics("rings").await;
+        d.screenshot(&docs.join("page-rings.png")).await;
+        d.click("table a[href^='/ui/rings/']").await;
+        let ring = d.wait_text("Parties that tie these claims").await;
+        assert!(ring.contains("class=\"network\"") && ring.contains("<ellipse"), "drawn");
+        assert!(ring.contains("Download as GraphML"));
+        d.assert_accessible_basics("ring").await;
+        d.script("document.querySelector('figure.tl').scrollIntoView(); return true;").await;
+        d.screenshot(&shots.join("ring-timeline.png")).await;
+        // A member claim's page draws its component too.
+        d.click("table a[href^='/ui/claims/']").await;
+        let member = d.wait_text("This claim belongs to group").await;
+        assert!(member.contains("class=\"network\"") && member.contains("Time line"));
+        d.assert_accessible_basics("ring claim").await;
+        d.script("document.getElementById('linked').scrollIntoView(); return true;").await;
+        d.screenshot(&docs.join("page-ring-network.png")).await;
         d.goto(&format!("{base}/ui/monitoring")).await;
         d.wait_text("Not for this key").await;
         sign_out().await;

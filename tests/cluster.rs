@@ -405,6 +405,8 @@ fn two_instances_share_one_stream_and_one_database() {
     }
     let window = weir::features::LONG_WINDOW_DAYS * weir::features::DAY;
     let graph = artifact().graph.clone();
+    // Claims two instances can have in hand at once (stream.in_flight = 16 each).
+    const IN_FLIGHT: i64 = 32;
     let out_of_order = |c: &Claim, oid: &str| {
         let id = c.claim_id.as_str();
         oid != id && (publish_pos[oid] < publish_pos[id]) != (seq[oid] < seq[id])
@@ -421,8 +423,10 @@ fn two_instances_share_one_stream_and_one_database() {
         });
         swapped_claims += usize::from(swapped);
         // The claims-graph features read the claim's whole component, further than the
-        // entities it names: they may differ when a claim naming any member's party (which
-        // counts towards that party's hub cap, or links) was decided out of order.
+        // entities it names and without holding their locks: they may differ when a claim
+        // naming any member's party (which links, or counts towards that party's hub cap) was
+        // decided out of order, or while this one was being decided (within the two
+        // instances' claims in flight of it).
         let (ring, direct): (Vec<_>, Vec<_>) = mine
             .features
             .iter()
@@ -445,7 +449,10 @@ fn two_instances_share_one_stream_and_one_database() {
                     by_entity.get(k).is_some_and(|os| {
                         os.iter().any(|o| {
                             let at = o.event_time();
-                            at < t && t - at <= window && out_of_order(c, &o.claim_id)
+                            at < t
+                                && t - at <= window
+                                && (out_of_order(c, &o.claim_id)
+                                    || (seq[o.claim_id.as_str()] - seq[id]).abs() <= IN_FLIGHT)
                         })
                     })
                 })

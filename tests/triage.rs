@@ -70,8 +70,16 @@ fn decide_all(artifact: &ModelArtifact, claims: &[DemoClaim]) -> Vec<Decided> {
             .iter()
             .find(|r| routed.fired.contains(&r.id))
             .map(|r| (format!("rule.{}", r.id), r.reason.clone()));
-        let first_reason =
-            rule_reason.or_else(|| s.reasons.first().map(|r| (r.code.clone(), r.text.clone())));
+        // As the service does: a referral with no qualifying reason says so.
+        let referred = matches!(routed.queue, Queue::Investigate | Queue::DeskCheck);
+        let first_reason = rule_reason
+            .or_else(|| s.reasons.first().map(|r| (r.code.clone(), r.text.clone())))
+            .or_else(|| {
+                referred.then(|| {
+                    let r = features::pattern_reason();
+                    (r.code, r.text)
+                })
+            });
         out.push(Decided {
             claim_id: d.claim.claim_id.clone(),
             mechanism: d.mechanism,
@@ -107,6 +115,22 @@ fn top_referrals_lead_with_evidence_and_the_ring_reaches_the_top_of_investigate(
         .collect();
     referred.sort_by(|a, b| b.priority.total_cmp(&a.priority));
     assert!(referred.len() >= 200, "{} referrals", referred.len());
+    // Most referrals at the top lead with a sign an investigator can check; the rest say
+    // plainly that none stands out (never an amount or a volume dressed up as a reason).
+    let pattern_only = referred
+        .iter()
+        .take(200)
+        .filter(|d| {
+            d.first_reason
+                .as_ref()
+                .is_some_and(|r| r.0 == "model.pattern")
+        })
+        .count();
+    println!("top 200 referrals with no single sign: {pattern_only}");
+    assert!(
+        pattern_only <= 20,
+        "{pattern_only} of the top 200 have no checkable reason"
+    );
     for d in referred.iter().take(200) {
         let (code, text) = d
             .first_reason

@@ -244,10 +244,55 @@ pub async fn run(o: DemoOptions) -> Result<()> {
         );
     }
     println!("   {}", a["note"].as_str().unwrap_or(""));
+    // Rings: claims tied by shared parties, ranked (the outcomes just posted count in the score).
+    let rings = investigator.get("/v1/rings?limit=3").await?.json()?;
+    println!(
+        "\n7. rings (groups of claims tied by shared parties, best score first; GET /v1/rings, /ui/rings):"
+    );
+    for (i, r) in rings["rings"].as_array().into_iter().flatten().enumerate() {
+        let f = &r["facts"];
+        let ties: Vec<String> = r["ties"]
+            .as_array()
+            .into_iter()
+            .flatten()
+            .take(4)
+            .map(|t| {
+                format!(
+                    "{} {} ({})",
+                    t["kind"].as_str().unwrap_or("").replace('_', " "),
+                    t["id"].as_str().unwrap_or(""),
+                    t["claims"].as_array().map_or(0, Vec::len)
+                )
+            })
+            .collect();
+        println!(
+            "     {}. {}  score {:.1}: {} claims by {} claimants, {} referred or confirmed, {} in all; tied by {}",
+            i + 1,
+            r["id"].as_str().unwrap_or("?"),
+            r["score"].as_f64().unwrap_or(0.0),
+            f["claims"],
+            f["claimants"],
+            f["flagged"],
+            crate::features::fmt_amount(f["amount"].as_f64().unwrap_or(0.0)),
+            ties.join(", ")
+        );
+        if i == 0 {
+            let members: Vec<String> = r["members"]
+                .as_array()
+                .into_iter()
+                .flatten()
+                .map(|m| {
+                    let outcome = m["outcome"].as_str().unwrap_or("open").replace('_', " ");
+                    format!("{} ({outcome})", m["claim_id"].as_str().unwrap_or("?"))
+                })
+                .collect();
+            println!("        members: {}", members.join(", "));
+        }
+    }
     let html = analyst.get("/v1/report").await?;
     let report = o.dir.join("report.html");
     std::fs::write(&report, &html.body)?;
-    println!("7. monitoring report written to {}", report.display());
+    println!("8. monitoring report written to {}", report.display());
 
     println!(
         "\nA referral is a prompt for human review, not a finding of fraud: payment decisions follow\nthe insurer's own procedures and the law where it operates."

@@ -159,6 +159,68 @@ fn top_referrals_lead_with_evidence_and_the_ring_reaches_the_top_of_investigate(
         ring_ranks.first().is_some_and(|&r| r <= 20),
         "no ring claim in the top 20 of investigate: {ring_ranks:?}"
     );
+
+    // The best-scored ring, as of the last claim, before any outcome: a planted ring.
+    let mut history = MemoryHistory::new();
+    for d in &claims {
+        history.record(&d.claim);
+    }
+    let as_of = claims.iter().map(|d| d.claim.event_time()).max().unwrap();
+    let from = as_of - artifact.graph.window_days * features::DAY;
+    let by_id: HashMap<&str, &Decided> = decided.iter().map(|d| (d.claim_id.as_str(), d)).collect();
+    let mut seen = std::collections::HashSet::new();
+    let mut best: Option<(f64, weir::graph::Component)> = None;
+    for d in claims.iter().filter(|d| d.claim.event_time() >= from) {
+        let node = weir::graph::ClaimNode::of(&d.claim);
+        if seen.contains(&node.claim) {
+            continue;
+        }
+        let c =
+            weir::graph::component(&history, &artifact.graph, node, from, i64::MAX, true).unwrap();
+        seen.extend(c.members.iter().map(|m| m.claim));
+        let facts = weir::graph::RingFacts {
+            claims: c.members.len(),
+            claimants: c.claimants(),
+            recent: c
+                .members
+                .iter()
+                .filter(|m| m.at >= as_of - 30 * features::DAY)
+                .count(),
+            flagged: c
+                .members
+                .iter()
+                .filter(|m| {
+                    matches!(
+                        by_id[m.claim_id.as_str()].queue,
+                        Queue::Investigate | Queue::DeskCheck
+                    )
+                })
+                .count(),
+            amount: c.amount(),
+        };
+        let score = weir::graph::ring_score(&facts);
+        if best.as_ref().is_none_or(|(b, _)| score > *b) {
+            best = Some((score, c));
+        }
+    }
+    let (score, top) = best.unwrap();
+    let planted = top
+        .members
+        .iter()
+        .filter(|m| by_id[m.claim_id.as_str()].mechanism == Mechanism::Ring)
+        .count();
+    let ids: Vec<&str> = top.members.iter().map(|m| m.claim_id.as_str()).collect();
+    println!(
+        "top ring {} score {score:.1}: {planted} of {} planted ring claims: {ids:?}",
+        top.id,
+        ids.len()
+    );
+    // Its other members are the ring claimants' own other claims (tied by claimant).
+    assert!(
+        planted >= 10 && planted * 2 > top.members.len(),
+        "the top ring is not the planted ring: {planted} of {}",
+        top.members.len()
+    );
 }
 
 #[test]

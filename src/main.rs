@@ -463,6 +463,19 @@ fn print_summary(r: &train::Report, out: &std::path::Path) {
         println!("  left out as exact duplicates: {}", d.join(", "));
     }
     println!("\n{}.\n", r.selection);
+    let caps: Vec<String> = r
+        .graph
+        .caps
+        .iter()
+        .map(|(k, v)| format!("{} {v}", k.replace('_', " ")))
+        .collect();
+    println!(
+        "claims graph: claims tied within {} days; a party naming more claims than {} times its kind's median (at least {}) is a hub and ties nothing. Caps measured on the training part: {}\n",
+        r.graph.window_days,
+        r.graph.hub_factor,
+        r.graph.hub_floor,
+        caps.join(", ")
+    );
     println!("held out (later claims, never used in fitting or selection):");
     println!(
         "  {:<58} {:>7} {:>7} {:>8} {:>8} {:>9} {:>8} {:>6} {:>9}",

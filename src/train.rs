@@ -703,6 +703,8 @@ pub struct Report {
     /// Features left out because their training column repeats an earlier one exactly:
     /// `(dropped, kept)`.
     pub duplicate_features: Vec<(String, String)>,
+    /// The claims graph's settings: the window and the hub caps measured on the training part.
+    pub graph: crate::graph::Settings,
     /// Every candidate's fold figures, in the order they were tried.
     pub cross_validation: Vec<CvResult>,
     pub champion: String,
@@ -1257,6 +1259,7 @@ pub fn train(mut loaded: Loaded, config: &Config, progress: bool) -> Result<Trai
         data,
         rule,
         duplicate_features,
+        graph: graph.clone(),
         cross_validation: cv,
         champion: champ.name,
         selection,
